@@ -1,0 +1,61 @@
+"""Error metrics (lower is better) for the grid, computed with scikit-learn."""
+
+from __future__ import annotations
+
+import numpy as np
+from sklearn import metrics as skm
+
+REGRESSION_METRICS = ("mse", "rmse", "mae")
+CLASSIFICATION_METRICS = ("error_rate", "log_loss")
+ALL_METRICS = REGRESSION_METRICS + CLASSIFICATION_METRICS
+
+METRIC_LABELS = {
+    "mse": "mean squared error",
+    "rmse": "root mean squared error",
+    "mae": "mean absolute error",
+    "error_rate": "error rate (1 - accuracy)",
+    "log_loss": "log loss",
+}
+
+
+def metrics_for_task(task: str) -> tuple[str, ...]:
+    """The metric names that make sense for a task."""
+    return REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
+
+
+def needs_proba(metric: str) -> bool:
+    """True when the metric scores class probabilities rather than labels."""
+    return metric == "log_loss"
+
+
+def error_of(metric: str, y_true: np.ndarray, prediction: np.ndarray,
+             labels: np.ndarray | None = None) -> float:
+    """Error of a prediction; for log loss `prediction` holds one column per label."""
+    if metric == "mse":
+        return float(skm.mean_squared_error(y_true, prediction))
+    if metric == "rmse":
+        return float(np.sqrt(skm.mean_squared_error(y_true, prediction)))
+    if metric == "mae":
+        return float(skm.mean_absolute_error(y_true, prediction))
+    if metric == "error_rate":
+        return float(1.0 - skm.accuracy_score(y_true, prediction))
+    if metric == "log_loss":
+        return float(skm.log_loss(y_true, prediction, labels=labels))
+    raise ValueError(f"unknown metric {metric!r}")
+
+
+def proba_for_labels(estimator, X, labels: np.ndarray) -> np.ndarray:
+    """predict_proba with one column per label of the whole data set.
+
+    A model fitted on a small subset may have seen fewer classes than exist;
+    the classes it never saw get probability zero (log loss clips them).
+    """
+    proba = estimator.predict_proba(X)
+    seen = list(getattr(estimator, "classes_", labels))
+    if len(seen) == len(labels) and np.array_equal(seen, labels):
+        return proba
+    full = np.zeros((proba.shape[0], len(labels)))
+    index = {label: i for i, label in enumerate(labels)}
+    for j, label in enumerate(seen):
+        full[:, index[label]] = proba[:, j]
+    return full
