@@ -1,0 +1,541 @@
+"""Learning-curve models: fit, choose, extrapolate with bootstrap bands, noise floor, samples needed.
+
+A setting's learning curve is its mean validation error against training-set
+size.  Each parametric family below is fitted by weighted non-linear least
+squares (weights 1 / standard error of the mean at each size, floored) in the
+scaled size x = m / (largest measured size), with bounds that keep every curve
+non-increasing in m and its asymptote (the noise-floor estimate) non-negative.
+Uncertainty comes from a bootstrap over whole (repeat, fold) units.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Callable, Iterable, Mapping
+
+import numpy as np
+import pandas as pd
+
+from gridplan.errors import GridplanError
+
+# --- documented thresholds -------------------------------------------------
+
+#: A forecast band is "too wide to be useful" when (high - low) / predicted
+#: exceeds this ratio at the size being forecast (the band is wider than the
+#: forecast itself).
+WIDE_BAND_RATIO = 1.0
+
+#: The spread floor: a size's standard error is raised to at least this
+#: fraction of the median standard error over sizes, so a size whose folds
+#: happen to agree cannot dominate the fit.
+SE_FLOOR_FRACTION = 0.1
+
+#: Family choice: families whose hold-out error is within this factor of the
+#: best one count as tied, and the one with fewest parameters wins.
+HOLDOUT_TIE_FACTOR = 1.10
+
+#: Fewest sizes for which the family is chosen by hold-out; below it pow3 is used.
+MIN_SIZES_FOR_CHOICE = 5
+
+#: Largest training size the samples-needed search will consider.
+DEFAULT_MAX_SIZE = 1e12
+
+_TINY = 1e-12
+
+
+# --- curve families --------------------------------------------------------
+
+@dataclass(frozen=True)
+class Family:
+    """A parametric learning-curve family, written in the scaled size x = m / scale.
+
+    The first internal parameter is always the asymptote (limit as m -> inf).
+    """
+
+    name: str
+    formula: str
+    param_names: tuple[str, ...]
+    lower: tuple[float, ...]
+    upper: tuple[float, ...]
+    evaluate: Callable[[np.ndarray, np.ndarray], np.ndarray]
+    invert: Callable[[np.ndarray, float], float]
+    original: Callable[[np.ndarray, float], dict[str, float]]
+
+    @property
+    def n_params(self) -> int:
+        return len(self.param_names)
+
+
+def _pow3(x, t):
+    return t[0] + t[1] * np.power(x, -t[2])
+
+
+def _pow3_invert(t, target):
+    return (t[1] / (target - t[0])) ** (1.0 / t[2]) if t[2] > 0 else math.inf
+
+
+def _pow4(x, t):
+    return t[0] + np.power(t[1] * x + t[3], -t[2])
+
+
+def _pow4_invert(t, target):
+    if t[1] <= 0 or t[2] <= 0:
+        return math.inf
+    return ((target - t[0]) ** (-1.0 / t[2]) - t[3]) / t[1]
+
+
+def _exp3(x, t):
+    return t[0] + t[1] * np.exp(-t[2] * x)
+
+
+def _exp3_invert(t, target):
+    return -math.log((target - t[0]) / t[1]) / t[2] if t[2] > 0 else math.inf
+
+
+def _mmf4(x, t):
+    # internal: (asymptote c, A = (a - c) * b, b, d); value c + A / (b + x^d)
+    return t[0] + t[1] / (t[2] + np.power(x, t[3]))
+
+
+def _mmf4_invert(t, target):
+    return (t[1] / (target - t[0]) - t[2]) ** (1.0 / t[3])
+
+
+def _mmf4_original(t, s):
+    a = t[0] + t[1] / t[2] if t[2] > 0 else math.inf
+    return {"a": a, "b": t[2] * s ** t[3], "c": t[0], "d": t[3]}
+
+
+def _box_cox(x, d):
+    """(x^d - 1) / d, continuous at d -> 0 where it becomes log(x)."""
+    return np.expm1(d * np.log(x)) / d
+
+
+def _wbl4(x, t):
+    # internal: (a, B = value above a at the largest size, k = c * d, d);
+    # value a + B * exp(-k * (x^d - 1) / d), which tends to pow3 as d -> 0
+    return t[0] + t[1] * np.exp(-t[2] * _box_cox(x, t[3]))
+
+
+def _wbl4_invert(t, target):
+    if t[2] <= 0:
+        return math.inf
+    return (1.0 - t[3] * math.log((target - t[0]) / t[1]) / t[2]) ** (1.0 / t[3])
+
+
+def _wbl4_original(t, s):
+    c = t[2] / t[3]
+    with np.errstate(over="ignore"):
+        b = float(t[1] * np.exp(c))
+    return {"a": t[0], "b": b, "c": c / s ** t[3], "d": t[3]}
+
+
+_INF = np.inf
+
+FAMILIES: dict[str, Family] = {
+    "pow3": Family(
+        "pow3", "e(m) = a + b * m^(-c)", ("a", "b", "c"),
+        (0.0, 0.0, 0.0), (_INF, _INF, 10.0), _pow3, _pow3_invert,
+        lambda t, s: {"a": t[0], "b": t[1] * s ** t[2], "c": t[2]},
+    ),
+    "exp3": Family(
+        "exp3", "e(m) = a + b * exp(-c * m)", ("a", "b", "c"),
+        (0.0, 0.0, 0.0), (_INF, _INF, 1e3), _exp3, _exp3_invert,
+        lambda t, s: {"a": t[0], "b": t[1], "c": t[2] / s},
+    ),
+    "pow4": Family(
+        "pow4", "e(m) = a + (b * m + d)^(-c)", ("a", "b", "c", "d"),
+        (0.0, 1e-12, 0.0, 0.0), (_INF, _INF, 10.0, _INF), _pow4, _pow4_invert,
+        lambda t, s: {"a": t[0], "b": t[1] / s, "c": t[2], "d": t[3]},
+    ),
+    "mmf4": Family(
+        "mmf4", "e(m) = (a * b + c * m^d) / (b + m^d)", ("c", "A", "b", "d"),
+        (0.0, 0.0, 0.0, 1e-3), (_INF, _INF, _INF, 10.0), _mmf4, _mmf4_invert, _mmf4_original,
+    ),
+    "wbl4": Family(
+        "wbl4", "e(m) = a + b * exp(-c * m^d)", ("a", "B", "k", "d"),
+        (0.0, 0.0, 0.0, 1e-6), (_INF, _INF, _INF, 10.0), _wbl4, _wbl4_invert, _wbl4_original,
+    ),
+}
+
+#: Families tried by default, simplest first (the order breaks ties).
+DEFAULT_FAMILIES: tuple[str, ...] = ("pow3", "exp3", "pow4", "mmf4", "wbl4")
+
+
+# --- fitting one family ----------------------------------------------------
+
+def _best_linear_start(x, y, w, basis: Callable[[np.ndarray, float], np.ndarray],
+                       rates: np.ndarray) -> tuple[float, float, float]:
+    """Scan a rate grid; for each rate fit (asymptote, amplitude) >= 0 by weighted NNLS."""
+    from scipy.optimize import nnls
+
+    best = (math.inf, float(np.min(y)), 0.0, float(rates[0]))
+    for rate in rates:
+        design = np.column_stack([np.ones_like(x), basis(x, rate)]) * w[:, None]
+        coef, resid = nnls(design, y * w)
+        if resid < best[0]:
+            best = (resid, coef[0], coef[1], rate)
+    return best[1], best[2], best[3]
+
+
+def _starts(family: str, x, y, w) -> list[np.ndarray]:
+    """A few starting points for a family, derived from a pow3 grid scan."""
+    a3, b3, c3 = _best_linear_start(x, y, w, lambda x, c: x ** -c, np.geomspace(0.02, 5.0, 30))
+    drop = max(float(y[0] - a3), 1e-6 * max(abs(float(y[0])), _TINY))
+    x0 = float(x[0])
+    if family == "pow3":
+        return [np.array([a3, b3, c3])]
+    if family == "exp3":
+        a, b, c = _best_linear_start(x, y, w, lambda x, c: np.exp(-c * x),
+                                     np.geomspace(0.05, 500.0, 40))
+        return [np.array([a, b, c])]
+    if family == "pow4":
+        c = max(c3, 0.05)
+        b = max(b3, 1e-9) ** (-1.0 / c)
+        return [np.array([a3, b, c, 0.0]), np.array([a3, b, c, 0.5 * b * x0]),
+                np.array([0.5 * a3, 1.0 / drop, 1.0, 0.0])]
+    if family == "mmf4":
+        return [np.array([a3, b3, 0.0, max(c3, 0.05)])] + [
+            np.array([a3, 2.0 * drop * x0 ** d, x0 ** d, d]) for d in (0.5, 1.5)]
+    if family == "wbl4":
+        return [np.array([a3, b3, c3, 1e-3])] + [
+            np.array([a3, b3, c3 * d, d]) for d in (0.5, 1.0)]
+    raise GridplanError(f"Unknown curve family {family!r}; choose from {', '.join(FAMILIES)}.")
+
+
+def _fit_family(fam: Family, x, y, w, starts: Iterable[np.ndarray]) -> tuple[np.ndarray, float]:
+    """Weighted bounded least squares from each start; the lowest cost wins."""
+    from scipy.optimize import least_squares
+
+    lower, upper = np.array(fam.lower), np.array(fam.upper)
+
+    def residuals(theta):
+        return (fam.evaluate(x, theta) - y) * w
+
+    best_theta, best_cost = None, math.inf
+    for start in starts:
+        start = np.clip(np.nan_to_num(start, nan=1.0, posinf=1e6), lower,
+                        np.where(np.isfinite(upper), upper, 1e12))
+        try:
+            result = least_squares(residuals, start, bounds=(lower, upper), method="trf",
+                                   x_scale="jac", max_nfev=400 * len(start))
+        except (ValueError, FloatingPointError):
+            continue
+        if np.all(np.isfinite(result.x)) and result.cost < best_cost:
+            best_theta, best_cost = result.x, float(result.cost)
+    if best_theta is None:
+        raise GridplanError(f"The {fam.name} curve could not be fitted to these errors.")
+    return best_theta, best_cost
+
+
+# --- level and spread at each size ------------------------------------------
+
+def _level_and_spread(errors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Mean over units and floored standard error of the mean, per size (rows)."""
+    counts = np.sum(np.isfinite(errors), axis=1)
+    level = np.nanmean(errors, axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        spread = np.nanstd(errors, axis=1, ddof=1) / np.sqrt(counts)
+    spread = np.where(counts > 1, spread, np.nan)
+    positive = spread[np.isfinite(spread) & (spread > 0)]
+    if positive.size:
+        spread = np.where(np.isfinite(spread), spread, positive.max())
+        floor = SE_FLOOR_FRACTION * float(np.median(positive))
+    else:
+        floor = 0.0
+    floor = max(floor, 1e-6 * float(np.nanmax(np.abs(level))), _TINY)
+    return level, np.maximum(np.nan_to_num(spread, nan=floor), floor)
+
+
+# --- results -----------------------------------------------------------------
+
+@dataclass(frozen=True)
+class SamplesNeeded:
+    """How many training samples a setting needs to reach a target error.
+
+    `needed` is the smallest size whose upper band edge (at `confidence`) is at
+    or below the target; `low`/`high` are where the band's lower/upper edges
+    reach it; `point` is where the fitted curve itself reaches it.
+    """
+
+    target: float
+    confidence: float
+    reachable: bool
+    needed: int | None
+    low: int | None
+    high: int | None
+    point: int | None
+    reason: str
+
+
+@dataclass(frozen=True)
+class SettingInfo:
+    """Labels of one (capacity, regularisation) setting and how many rows were unusable."""
+
+    capacity_index: int
+    regularization_index: int
+    capacity: str
+    regularization: str
+    skipped_rows: int = 0
+
+
+@dataclass
+class CurveFit:
+    """One setting's fitted learning curve with its bootstrap replicates."""
+
+    family: str
+    theta: np.ndarray              # internal parameters, scaled size
+    scale: float                   # largest measured size; x = m / scale
+    sizes: np.ndarray
+    validation_mean: np.ndarray
+    validation_se: np.ndarray
+    train_mean: np.ndarray | None
+    boot_theta: np.ndarray         # (n_boot, n_params)
+    n_units: int
+    inflation: float               # band scale factor from the residual spread, >= 1
+    holdout_errors: dict[str, float | None] = field(default_factory=dict)
+    setting: SettingInfo | None = None
+
+    # -- point forecasts
+    @property
+    def params(self) -> dict[str, float]:
+        """Parameters in the original size units, named as in the family's formula."""
+        return {k: float(v) for k, v in FAMILIES[self.family].original(self.theta, self.scale).items()}
+
+    @property
+    def asymptote(self) -> float:
+        """The fitted error as m -> infinity (noise-floor estimate)."""
+        return float(self.theta[0])
+
+    def predict(self, m) -> np.ndarray:
+        """Fitted validation error at training size(s) m."""
+        x = np.asarray(m, dtype=float) / self.scale
+        return FAMILIES[self.family].evaluate(x, self.theta)
+
+    # -- bands
+    def _band_from(self, point: np.ndarray, replicates: np.ndarray, confidence: float):
+        alpha = 1.0 - _check_confidence(confidence)
+        q_low, q_high = np.quantile(replicates, [alpha / 2, 1 - alpha / 2], axis=0)
+        low = point - self.inflation * (point - q_low)
+        high = point + self.inflation * (q_high - point)
+        return np.maximum(np.minimum(low, point), 0.0), np.maximum(high, point)
+
+    def band(self, m, confidence: float = 0.9) -> tuple[np.ndarray, np.ndarray]:
+        """Two-sided confidence band (low, high) for the error at size(s) m."""
+        x = np.atleast_1d(np.asarray(m, dtype=float)) / self.scale
+        fam = FAMILIES[self.family]
+        replicates = np.array([fam.evaluate(x, t) for t in self.boot_theta])
+        low, high = self._band_from(fam.evaluate(x, self.theta), replicates, confidence)
+        if np.ndim(m) == 0:
+            return low[0], high[0]
+        return low, high
+
+    def asymptote_band(self, confidence: float = 0.9) -> tuple[float, float]:
+        """Confidence interval for the asymptote (noise floor)."""
+        low, high = self._band_from(np.array([self.asymptote]), self.boot_theta[:, :1], confidence)
+        return float(low[0]), float(high[0])
+
+    def band_too_wide(self, m, confidence: float = 0.9) -> bool:
+        """True when the band at m is wider than WIDE_BAND_RATIO times the forecast."""
+        low, high = self.band(float(m), confidence)
+        predicted = float(self.predict(float(m)))
+        return bool(high - low > WIDE_BAND_RATIO * max(predicted, _TINY))
+
+    # -- samples needed
+    def samples_needed(self, target: float, confidence: float = 0.9,
+                       max_size: float = DEFAULT_MAX_SIZE) -> SamplesNeeded:
+        """Smallest training size whose upper band edge reaches `target` (None if never)."""
+        if not np.isfinite(target) or target < 0:
+            raise GridplanError(f"The target error must be a non-negative number, got {target!r}.")
+        _check_confidence(confidence)
+        fam = FAMILIES[self.family]
+        point = _point_reach(fam, self.theta, self.scale, target, max_size)
+        grid = np.geomspace(1.0, max_size, 721)
+        low_edge, high_edge = self.band(grid, confidence)
+        low = _edge_reach(lambda m: self.band(m, confidence)[0], grid, low_edge, target)
+        high = _edge_reach(lambda m: self.band(m, confidence)[1], grid, high_edge, target)
+        floor_low, floor_high = self.asymptote_band(confidence)
+        largest = int(self.sizes[-1])
+        if high is not None:
+            reason = ("already reached at the largest measured size" if high <= largest
+                      else "reachable with more data")
+            return SamplesNeeded(target, confidence, True, high, low, high, point, reason)
+        if target < floor_low:
+            reason = (f"target {target:.4g} is below the noise-floor band "
+                      f"[{floor_low:.4g}, {floor_high:.4g}]")
+        elif target <= floor_high:
+            reason = (f"target {target:.4g} lies inside the noise-floor band "
+                      f"[{floor_low:.4g}, {floor_high:.4g}], so it cannot be promised "
+                      f"at {confidence:.0%} confidence")
+        else:
+            reason = f"target needs more than {max_size:.3g} samples at {confidence:.0%} confidence"
+        return SamplesNeeded(target, confidence, False, None, low, None, point, reason)
+
+    # -- noise floor cross-check
+    def midpoint_check(self, confidence: float = 0.9) -> dict:
+        """Cross-check the asymptote against the training/validation errors at the largest size.
+
+        For a well-behaved model the mean training error lies below and the
+        mean validation error above the noise floor (Cortes et al. 1994), and
+        their midpoint is a rough estimate of it.  Rule: the check
+        `disagrees` when the asymptote's confidence interval lies wholly
+        outside [training error, validation error] at the largest size.
+        """
+        low, high = self.asymptote_band(confidence)
+        validation = float(self.validation_mean[-1])
+        if self.train_mean is None or not np.isfinite(self.train_mean[-1]):
+            return {"available": False, "train_at_largest": None,
+                    "validation_at_largest": validation, "midpoint": None,
+                    "asymptote": self.asymptote, "relative_difference": None,
+                    "bracket_contains_asymptote": None, "disagree": False}
+        train = float(self.train_mean[-1])
+        bottom, top = min(train, validation), max(train, validation)
+        midpoint = 0.5 * (train + validation)
+        overlaps = high >= bottom and low <= top
+        return {"available": True, "train_at_largest": train,
+                "validation_at_largest": validation, "midpoint": midpoint,
+                "asymptote": self.asymptote,
+                "relative_difference": (self.asymptote - midpoint) / max(abs(midpoint), _TINY),
+                "bracket_contains_asymptote": bool(bottom <= self.asymptote <= top),
+                "disagree": not overlaps}
+
+
+def _check_confidence(confidence: float) -> float:
+    if not 0.0 < confidence < 1.0:
+        raise GridplanError(f"Confidence must lie strictly between 0 and 1, got {confidence!r}.")
+    return float(confidence)
+
+
+def _point_reach(fam: Family, theta, scale, target, max_size) -> int | None:
+    """Closed-form size at which the fitted curve reaches the target."""
+    if target <= theta[0]:
+        return None
+    if fam.evaluate(np.array([1.0 / scale]), theta)[0] <= target:
+        return 1
+    with np.errstate(all="ignore"):
+        x = fam.invert(theta, target)
+    m = x * scale
+    if not np.isfinite(m) or m > max_size:
+        return None
+    return max(1, int(math.ceil(m - 1e-9 * m)))
+
+
+def _edge_reach(edge: Callable, grid: np.ndarray, values: np.ndarray, target: float) -> int | None:
+    """Smallest m on [1, grid max] with edge(m) <= target: grid scan, then brentq in log m."""
+    from scipy.optimize import brentq
+
+    hits = np.flatnonzero(values <= target * (1 + 1e-9))
+    if hits.size == 0:
+        return None
+    first = hits[0]
+    if first == 0:
+        return 1
+    root = brentq(lambda log_m: float(edge(math.exp(log_m))) - target,
+                  math.log(grid[first - 1]), math.log(grid[first]), xtol=1e-10)
+    m = math.exp(root)
+    size = max(1, int(math.ceil(m - 1e-9 * m)))
+    return size if float(edge(float(size))) <= target * (1 + 1e-9) else size + 1
+
+
+# --- fitting a setting ----------------------------------------------------------
+
+def _as_matrix(sizes, fold_errors, name: str) -> tuple[np.ndarray, np.ndarray]:
+    sizes = np.asarray(sizes, dtype=float)
+    errors = np.asarray(fold_errors, dtype=float)
+    if errors.ndim == 1:
+        errors = errors[:, None]
+    if sizes.ndim != 1 or errors.ndim != 2 or errors.shape[0] != sizes.size:
+        raise GridplanError(f"The {name} errors must have one row per training size.")
+    return sizes, errors
+
+
+def _choose_family(x, y, se, families: tuple[str, ...]) -> tuple[str, dict[str, float | None]]:
+    """Pick the family that best predicts the largest sizes when fitted on the smaller ones."""
+    if len(x) < MIN_SIZES_FOR_CHOICE or len(families) == 1:
+        chosen = "pow3" if "pow3" in families else families[0]
+        return chosen, {name: None for name in families}
+    held = 1 if len(x) < 7 else 2
+    xf, yf, wf = x[:-held], y[:-held], 1.0 / se[:-held]
+    scores: dict[str, float | None] = {}
+    for name in families:
+        fam = FAMILIES[name]
+        if len(xf) < fam.n_params + 1:
+            scores[name] = None
+            continue
+        theta, _ = _fit_family(fam, xf, yf, wf, _starts(name, xf, yf, wf))
+        scores[name] = float(np.mean(np.abs(fam.evaluate(x[-held:], theta) - y[-held:])))
+    scored = {k: v for k, v in scores.items() if v is not None}
+    best = min(scored.values())
+    tied = [k for k, v in scored.items() if v <= HOLDOUT_TIE_FACTOR * best + _TINY]
+    chosen = min(tied, key=lambda k: (FAMILIES[k].n_params, families.index(k)))
+    return chosen, scores
+
+
+def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
+                families: Iterable[str] = DEFAULT_FAMILIES, n_boot: int = 200,
+                seed: int | np.random.SeedSequence = 0,
+                setting: SettingInfo | None = None) -> CurveFit:
+    """Fit one learning curve.
+
+    `fold_errors` has one row per training size and one column per
+    (repeat, fold) unit (NaN where a unit is missing); `train_fold_errors`
+    is the same for training error.  The family is chosen by hold-out on
+    the largest sizes, then refitted on `n_boot` bootstrap resamples of the
+    units (deterministic given `seed`).
+    """
+    families = tuple(families)
+    for name in families:
+        if name not in FAMILIES:
+            raise GridplanError(f"Unknown curve family {name!r}; choose from {', '.join(FAMILIES)}.")
+    if not families:
+        raise GridplanError("At least one curve family is needed.")
+    if n_boot < 2:
+        raise GridplanError(f"The bootstrap needs at least 2 resamples, got {n_boot}.")
+    sizes_in = sizes
+    sizes, errors = _as_matrix(sizes, fold_errors, "validation")
+    order = np.argsort(sizes)
+    sizes, errors = sizes[order], errors[order]
+    usable = np.any(np.isfinite(errors), axis=1) & (sizes > 0)
+    sizes, errors = sizes[usable], errors[usable]
+    if len(np.unique(sizes)) != len(sizes):
+        raise GridplanError("Each training size must appear once in a learning curve.")
+    if len(sizes) < 3:
+        raise GridplanError(f"A learning curve needs at least 3 training sizes with results, got {len(sizes)}.")
+    n_units = errors.shape[1]
+    if n_units < 2:
+        raise GridplanError("The bootstrap needs at least two (repeat, fold) units per size.")
+    train_mean = None
+    if train_fold_errors is not None:
+        _, train = _as_matrix(sizes_in, train_fold_errors, "training")
+        train = train[order][usable]
+        with np.errstate(all="ignore"):
+            train_mean = np.where(np.any(np.isfinite(train), axis=1), np.nanmean(train, axis=1), np.nan)
+
+    scale = float(sizes[-1])
+    x = sizes / scale
+    level, spread = _level_and_spread(errors)
+    family, holdout = _choose_family(x, level, spread, families)
+    fam = FAMILIES[family]
+    theta, cost = _fit_family(fam, x, level, 1.0 / spread, _starts(family, x, level, 1.0 / spread))
+
+    dof = len(x) - fam.n_params
+    inflation = max(1.0, math.sqrt(2.0 * cost / dof)) if dof > 0 else 1.0
+
+    rng = np.random.default_rng(seed)
+    boot = []
+    for _ in range(n_boot):
+        picked = errors[:, rng.integers(0, n_units, n_units)]
+        keep = np.any(np.isfinite(picked), axis=1)
+        if keep.sum() < fam.n_params:
+            continue
+        b_level, b_spread = _level_and_spread(picked[keep])
+        w = 1.0 / b_spread
+        starts = [theta]
+        boot.append(_fit_family(fam, x[keep], b_level, w, starts)[0])
+    if len(boot) < 2:
+        raise GridplanError("Too few bootstrap resamples could be fitted; the curve has too many gaps.")
+    return CurveFit(family=family, theta=theta, scale=scale, sizes=sizes,
+                    validation_mean=level, validation_se=spread, train_mean=train_mean,
+                    boot_theta=np.array(boot), n_units=n_units, inflation=inflation,
+                    holdout_errors=holdout, setting=setting)
