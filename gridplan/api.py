@@ -1,0 +1,197 @@
+"""The Python face of gridplan: load a config, run its grid, read a run back.
+
+    >>> import gridplan.api as gp
+    >>> run_dir = gp.run("configs/demo.toml")
+    >>> cells = gp.open_run(run_dir).cells()
+"""
+
+from __future__ import annotations
+
+import os
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterator
+
+import pandas as pd
+
+from gridplan.config import Config, load_config, parse_config
+from gridplan.errors import GridplanError
+from gridplan.spec import GridSpec, identity_difference, resolve
+from gridplan.store import CONFIG_COPY, STORE_NAME, Store
+
+LOCK_NAME = "run.lock"
+DEFAULT_OUTPUTS = Path("outputs")
+
+
+def default_run_dir(config: Config) -> Path:
+    """outputs/<run name> under the current directory."""
+    return DEFAULT_OUTPUTS / config.name
+
+
+def effective_jobs(config: Config, jobs: int | None) -> int:
+    """Worker count: the option, else the config; -1 means every core."""
+    n = config.jobs if jobs is None else jobs
+    if n == 0:
+        raise GridplanError("jobs must not be 0; use -1 for all cores or a positive count.")
+    return max(1, os.cpu_count() or 1) if n < 0 else n
+
+
+@contextmanager
+def run_lock(run_dir: Path) -> Iterator[None]:
+    """Refuse a second run on the same folder while one is going."""
+    import fcntl
+    path = run_dir / LOCK_NAME
+    try:
+        handle = open(path, "a+")
+    except OSError as exc:
+        raise GridplanError(f"cannot write to run folder {run_dir}: {exc.strerror}.") from None
+    try:
+        fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        handle.close()
+        raise GridplanError(f"another gridplan run is using {run_dir} right now; wait for it "
+                            f"to finish or choose another folder with --out.") from None
+    try:
+        handle.seek(0)
+        handle.truncate()
+        handle.write(str(os.getpid()))
+        handle.flush()
+        yield
+    finally:
+        fcntl.flock(handle, fcntl.LOCK_UN)
+        handle.close()
+
+
+def prepare_run_dir(spec: GridSpec, run_dir: Path) -> Store:
+    """Create or reopen the run folder; refuse one that holds a different grid."""
+    try:
+        run_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise GridplanError(f"cannot create run folder {run_dir}: {exc.strerror}.") from None
+    if not os.access(run_dir, os.W_OK):
+        raise GridplanError(f"run folder {run_dir} is not writable.")
+    store_path = run_dir / STORE_NAME
+    existed = store_path.is_file()
+    store = Store(store_path)
+    identity = spec.measuring_identity()
+    if existed:
+        meta = store.meta()
+        old = meta.get("identity")
+        if old is not None and old != identity:
+            store.close()
+            raise GridplanError(
+                f"{run_dir} holds a run of a different grid ({identity_difference(old, identity)} "
+                f"changed); pass --out NEW_FOLDER for a new run, or delete the folder to start over.")
+    c = spec.config
+    store.set_meta({
+        "identity": identity, "fingerprint": spec.fingerprint(),
+        "config_name": c.source.name, "data_path": str(c.data_path), "task": c.task,
+        "metric": c.metric, "target_column": c.target, "model": c.model_name,
+        "family": spec.plan.family,
+        "capacity_param": c.capacity.param if c.capacity.feature_sets is None else "features",
+        "regularization_param": c.regularization.param,
+        "n_rows": spec.dataset.n_rows, "sizes": list(spec.sizes),
+        "folds": c.folds, "repeats": c.repeats,
+        "test_sizes": [int(len(f.test)) for f in spec.folds],
+        "train_fold_sizes": [int(len(f.train)) for f in spec.folds],
+    })
+    store.set_axes({
+        "capacity": list(zip(c.capacity.labels, _values(c.capacity))),
+        "regularization": list(zip(c.regularization.labels, list(c.regularization.values))),
+        "size": [(str(m), m) for m in spec.sizes],
+    })
+    (run_dir / CONFIG_COPY).write_text(c.text or "", encoding="utf-8")
+    return store
+
+
+def _values(axis) -> list:
+    if axis.feature_sets is not None:
+        return [list(s) for s in axis.feature_sets]
+    return list(axis.values)
+
+
+def run(config: Config | str | Path, *, out: str | Path | None = None, jobs: int | None = None,
+        scheduler: str | None = None, allow_any_estimator: bool = False,
+        progress=None, spec: GridSpec | None = None) -> Path:
+    """Evaluate a config's grid, resuming an earlier partial run in the same folder."""
+    from gridplan.runner import run_grid
+    if not isinstance(config, Config):
+        config = load_config(config)
+    spec = spec or resolve(config, allow_any_import=allow_any_estimator)
+    run_dir = Path(out) if out is not None else default_run_dir(config)
+    address = scheduler or config.scheduler
+    with _locked(run_dir):
+        store = prepare_run_dir(spec, run_dir)
+        try:
+            if address:
+                from gridplan.cluster import run_on_cluster
+                run_on_cluster(spec, store, address, progress=progress)
+            else:
+                run_grid(spec, store, jobs=effective_jobs(config, jobs), progress=progress)
+        finally:
+            store.close()
+    return run_dir
+
+
+@contextmanager
+def _locked(run_dir: Path) -> Iterator[None]:
+    try:
+        run_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise GridplanError(f"cannot create run folder {run_dir}: {exc.strerror}.") from None
+    with run_lock(run_dir):
+        yield
+
+
+@dataclass
+class Run:
+    """A run folder opened for reading."""
+
+    run_dir: Path
+    meta: dict
+    axes: dict
+    config: Config | None
+
+    def cells(self) -> pd.DataFrame:
+        """The tidy per-fold table."""
+        with Store.open_existing(self.run_dir) as store:
+            return store.cells()
+
+
+def open_run(run_dir: str | Path) -> Run:
+    """Open a run folder written by `run` (today's or from another machine)."""
+    run_dir = Path(run_dir)
+    with Store.open_existing(run_dir) as store:
+        meta, axes = store.meta(), store.axes()
+    config = None
+    copy = run_dir / CONFIG_COPY
+    if copy.is_file():
+        import tomllib
+        try:
+            config = parse_config(tomllib.loads(copy.read_text(encoding="utf-8")),
+                                  copy.resolve(), copy.read_text(encoding="utf-8"))
+        except (GridplanError, tomllib.TOMLDecodeError):
+            config = None
+    return Run(run_dir=run_dir, meta=meta, axes=axes, config=config)
+
+
+def export_cells(run_dir: str | Path, out: str | Path) -> int:
+    """Write the per-fold table as CSV (or Parquet by extension); returns the row count."""
+    frame = open_run(run_dir).cells()
+    out = Path(out)
+    try:
+        if out.suffix.lower() in (".parquet", ".pq"):
+            frame.to_parquet(out, index=False)
+        else:
+            frame.to_csv(out, index=False)
+    except OSError as exc:
+        raise GridplanError(f"cannot write {out}: {exc.strerror}.") from None
+    return len(frame)
+
+
+def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> GridSpec:
+    """Validate a config against its data and return the resolved grid."""
+    if not isinstance(config, Config):
+        config = load_config(config)
+    return resolve(config, allow_any_import=allow_any_estimator)

@@ -1,0 +1,192 @@
+"""The `gridplan` command line: a thin face over gridplan.api.
+
+Heavy libraries are imported inside the commands so that `--help` answers fast.
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+from pathlib import Path
+from typing import Callable, Optional
+
+import typer
+
+app = typer.Typer(add_completion=False, no_args_is_help=True,
+                  help="Measure a capacity x regularisation x data-size grid, forecast its "
+                       "learning curves and plan the cheapest way to a target error.")
+
+
+def _fail(message: str, code: int = 1) -> None:
+    typer.echo(f"gridplan: {message}", err=True)
+    raise typer.Exit(code)
+
+
+def friendly(command: Callable) -> Callable:
+    """Turn GridplanError into one sentence and exit 1; Ctrl-C into a resume hint."""
+    @functools.wraps(command)
+    def wrapper(*args, **kwargs):
+        from gridplan.errors import GridplanError
+        try:
+            return command(*args, **kwargs)
+        except GridplanError as exc:
+            _fail(str(exc))
+        except KeyboardInterrupt:
+            _fail("interrupted; every finished cell is saved. Run the same command again "
+                  "to resume.", code=130)
+    return wrapper
+
+
+def _describe(spec, run_dir: Path) -> str:
+    from gridplan.runner import fast_path_kind
+    c, d = spec.config, spec.dataset
+    cap = c.capacity
+    cap_text = (f"feature sets: {', '.join(cap.labels)}" if cap.feature_sets
+                else f"{cap.param}: {', '.join(cap.labels)}")
+    reg = c.regularization
+    reg_text = f"{reg.param}: {', '.join(reg.labels)}" if reg.param else "none"
+    path = fast_path_kind(spec.plan, c.metric) or "plain fits"
+    sizes = ", ".join(map(str, spec.sizes))
+    lines = [
+        ("config", str(c.source)),
+        ("data", f"{c.data_path.name}: {d.n_rows} rows, {len(d.numeric)} numeric + "
+                 f"{len(d.categorical)} categorical features, target {c.target!r} ({c.task})"),
+        ("model", f"{spec.plan.family or c.estimator} ({path})"),
+        ("capacity", cap_text),
+        ("regularization", reg_text),
+        ("train sizes", sizes),
+        ("resampling", f"{c.folds} folds x {c.repeats} repeats, seed {c.seed}"),
+        ("metric", c.metric + (f", target {c.target_error:g}" if c.target_error else "")),
+        ("grid", f"{spec.n_cells} cells ({spec.n_settings} settings x {len(spec.sizes)} sizes), "
+                 f"{spec.n_fits} fits"),
+        ("run folder", str(run_dir)),
+    ]
+    width = max(len(k) for k, _ in lines)
+    return "\n".join(f"{k.ljust(width)}  {v}" for k, v in lines)
+
+
+@app.command()
+@friendly
+def check(config: Path = typer.Argument(..., help="TOML config file."),
+          out: Optional[Path] = typer.Option(None, "--out", help="Run folder (default outputs/<name>)."),
+          allow_any_estimator: bool = typer.Option(False, "--allow-any-estimator",
+                                                   help="Allow estimators outside sklearn.*")):
+    """Validate a config against its data and print the grid it describes."""
+    from gridplan import api
+    spec = api.check(config, allow_any_estimator=allow_any_estimator)
+    typer.echo(_describe(spec, out or api.default_run_dir(spec.config)))
+
+
+@app.command()
+@friendly
+def run(config: Path = typer.Argument(..., help="TOML config file."),
+        out: Optional[Path] = typer.Option(None, "--out", help="Run folder (default outputs/<name>)."),
+        jobs: Optional[int] = typer.Option(None, "--jobs", "-j", help="Worker processes (-1: all cores)."),
+        scheduler: Optional[str] = typer.Option(None, "--scheduler",
+                                                help="Address of a running dask scheduler."),
+        yes: bool = typer.Option(False, "--yes", "-y", help="Do not ask for confirmation."),
+        quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
+        allow_any_estimator: bool = typer.Option(False, "--allow-any-estimator",
+                                                 help="Allow estimators outside sklearn.*")):
+    """Evaluate the grid (resuming a partial run in the same folder)."""
+    from gridplan import api
+    spec = api.check(config, allow_any_estimator=allow_any_estimator)
+    run_dir = out or api.default_run_dir(spec.config)
+    if not quiet:
+        typer.echo(_describe(spec, run_dir))
+    with _progress_bar(spec, quiet) as progress:
+        api.run(spec.config, out=run_dir, jobs=jobs, scheduler=scheduler,
+                allow_any_estimator=allow_any_estimator, progress=progress, spec=spec)
+    cells = api.open_run(run_dir).cells()
+    failed = int((cells["status"] != "ok").sum())
+    typer.echo(f"done: {len(cells)} fits stored in {run_dir}"
+               + (f"; {failed} failed (see `gridplan export`)" if failed else ""))
+
+
+class _progress_bar:
+    """A rich progress bar fed by the runner's (done, total) callback."""
+
+    def __init__(self, spec, quiet: bool):
+        self.quiet = quiet or not sys.stderr.isatty() and False
+        self.folds = len(spec.folds)
+        self.cells = spec.n_cells
+        self.bar = None
+
+    def __enter__(self):
+        if self.quiet:
+            return None
+        from rich.progress import (BarColumn, Progress, TextColumn, TimeRemainingColumn)
+        self.bar = Progress(TextColumn("[bold]grid"), BarColumn(),
+                            TextColumn("{task.fields[cells]}"),
+                            TextColumn("{task.fields[rate]}"), TimeRemainingColumn(),
+                            transient=False)
+        self.bar.start()
+        self.task = self.bar.add_task("grid", total=self.cells * self.folds,
+                                      cells="", rate="")
+        import time
+        self._t0, self._first = time.monotonic(), None
+        return self.update
+
+    def update(self, done: int, total: int) -> None:
+        import time
+        now = time.monotonic()
+        if self._first is None:
+            self._first = done
+        rate = (done - self._first) / max(now - self._t0, 1e-9)
+        self.bar.update(self.task, completed=done, total=total,
+                        cells=f"{done // self.folds}/{self.cells} cells",
+                        rate=f"{rate:,.0f} fits/s")
+
+    def __exit__(self, *exc):
+        if self.bar is not None:
+            self.bar.stop()
+        return False
+
+
+@app.command()
+@friendly
+def export(run_dir: Path = typer.Argument(..., help="Run folder."),
+           output: Path = typer.Option(..., "-o", "--output", help="CSV (or .parquet) to write.")):
+    """Write the tidy per-fold table of a run."""
+    from gridplan import api
+    n = api.export_cells(run_dir, output)
+    typer.echo(f"wrote {n} rows to {output}")
+
+
+@app.command()
+@friendly
+def demo(out: Path = typer.Option(Path("outputs/demo"), "--out", help="Folder for data, config and run."),
+         jobs: Optional[int] = typer.Option(None, "--jobs", "-j"),
+         quiet: bool = typer.Option(False, "--quiet", "-q")):
+    """Generate the orchard scenario, run its grid and summarise it."""
+    from gridplan import api
+    from gridplan.demo import NOISE_FLOOR_MSE, write_demo
+    config_path = write_demo(out)
+    typer.echo(f"demo data and config written to {out}")
+    spec = api.check(config_path)
+    with _progress_bar(spec, quiet) as progress:
+        api.run(spec.config, out=out / "run", jobs=jobs, progress=progress, spec=spec)
+    cells = api.open_run(out / "run").cells()
+    typer.echo(_demo_summary(cells, NOISE_FLOOR_MSE))
+    typer.echo(f"run folder: {out / 'run'}")
+
+
+def _demo_summary(cells, noise_floor: float) -> str:
+    ok = cells[cells["status"] == "ok"]
+    largest = ok["train_size"].max()
+    at_full = (ok[ok["train_size"] == largest]
+               .groupby(["capacity", "regularization"], sort=False)[["train_error", "validation_error"]]
+               .mean().sort_values("validation_error"))
+    best = at_full.iloc[0]
+    cap, reg = at_full.index[0]
+    return (f"best setting at {largest} training rows: degree {cap}, alpha {reg}: "
+            f"validation MSE {best['validation_error']:.3f}, training MSE {best['train_error']:.3f} "
+            f"(the true noise floor is {noise_floor:.3f})")
+
+
+def main() -> None:  # pragma: no cover - console entry point
+    app()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,412 @@
+"""Read a TOML config file into a validated, immutable `Config`.
+
+Every problem becomes a `GridplanError` naming the file, the key and the value.
+Data-dependent checks (sizes against the training fold, columns) live in
+`gridplan.data` and `gridplan.spec`.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from gridplan.errors import GridplanError
+from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS
+
+FAMILIES = ("poly-ridge", "tree")
+TASKS = ("regression", "classification")
+
+# section -> {key: description}; the description is only for messages and docs.
+SCHEMA: dict[str, dict[str, str]] = {
+    "data": {"path": "str", "target": "str", "task": "str", "features": "list",
+             "missing": "str"},
+    "model": {"family": "str", "estimator": "str", "params": "table",
+              "capacity": "table", "regularization": "table"},
+    "sizes": {"values": "list", "count": "int", "smallest": "int"},
+    "resampling": {"folds": "int", "repeats": "int", "seed": "int"},
+    "goal": {"metric": "str", "target": "number", "confidence": "number"},
+    "costs": {"per_sample": "number", "capacity_step": "number",
+              "regularization_step": "number", "max_samples": "int",
+              "feature_groups": "table", "per_fit_second": "number"},
+    "run": {"jobs": "int", "scheduler": "str", "fit_time_limit": "number",
+            "name": "str"},
+}
+REQUIRED_SECTIONS = ("data", "model")
+AXIS_KEYS = ("param", "values", "features")
+
+DEFAULT_CAPACITY_PARAM = {"poly-ridge": "degree", "tree": "max_depth"}
+DEFAULT_REGULARIZATION_PARAM = {"poly-ridge": "alpha", "tree": "min_samples_leaf"}
+DEFAULT_METRIC = {"regression": "mse", "classification": "error_rate"}
+
+
+@dataclass(frozen=True)
+class Axis:
+    """One model axis: a parameter name and its values (ascending), or feature sets."""
+
+    param: str | None
+    values: tuple[Any, ...]
+    feature_sets: tuple[tuple[str, ...], ...] | None = None
+
+    @property
+    def labels(self) -> tuple[str, ...]:
+        """Short text labels, one per value."""
+        if self.feature_sets is not None:
+            return feature_set_labels(self.feature_sets)
+        return tuple(value_label(v) for v in self.values)
+
+    def __len__(self) -> int:
+        return len(self.values)
+
+
+@dataclass(frozen=True)
+class Costs:
+    """The user's own costs; all optional, in the user's currency."""
+
+    per_sample: float = 1.0
+    capacity_step: float = 100.0
+    regularization_step: float = 1.0
+    max_samples: int | None = None
+    feature_groups: dict[str, float] = field(default_factory=dict)
+    per_fit_second: float = 0.0
+
+
+@dataclass(frozen=True)
+class Config:
+    """A validated config file."""
+
+    source: Path
+    text: str
+    data_path: Path
+    target: str
+    task: str
+    features: tuple[str, ...] | None
+    missing: str
+    family: str | None
+    estimator: str | None
+    params: dict[str, Any]
+    capacity: Axis
+    regularization: Axis
+    size_values: tuple[int, ...] | None
+    size_count: int
+    smallest_size: int | None
+    folds: int
+    repeats: int
+    seed: int
+    metric: str
+    target_error: float | None
+    confidence: float
+    costs: Costs
+    jobs: int
+    scheduler: str | None
+    fit_time_limit: float | None
+    name: str
+
+    @property
+    def model_name(self) -> str:
+        """The family name or the estimator's import path."""
+        return self.family or self.estimator or "?"
+
+
+def value_label(value: Any) -> str:
+    """Compact text for an axis value: 3, 0.001, 1e-06, none."""
+    if value is None:
+        return "none"
+    if isinstance(value, float):
+        return f"{value:g}"
+    return str(value)
+
+
+def feature_set_labels(sets: tuple[tuple[str, ...], ...]) -> tuple[str, ...]:
+    """Label nested feature sets by the group each one adds: 'a,b', '+c', '+d,e'."""
+    labels = []
+    previous: tuple[str, ...] = ()
+    for current in sets:
+        added = [c for c in current if c not in previous]
+        prefix = "" if not previous else "+"
+        labels.append(prefix + ",".join(added))
+        previous = current
+    return tuple(labels)
+
+
+def _where(path: Path, section: str, key: str | None = None) -> str:
+    return f"{path.name}: [{section}] {key}" if key else f"{path.name}: [{section}]"
+
+
+def _suggest(word: str, options: list[str]) -> str:
+    close = difflib.get_close_matches(word, options, n=1, cutoff=0.6)
+    return f" (did you mean {close[0]!r}?)" if close else ""
+
+
+def _check_keys(path: Path, raw: dict[str, Any]) -> None:
+    for section, body in raw.items():
+        if section not in SCHEMA:
+            raise GridplanError(
+                f"{path.name}: unknown section [{section}]"
+                f"{_suggest(section, list(SCHEMA))}; known sections are "
+                f"{', '.join(SCHEMA)}.")
+        if not isinstance(body, dict):
+            raise GridplanError(f"{path.name}: {section} must be a table like [{section}].")
+        for key in body:
+            if key not in SCHEMA[section]:
+                raise GridplanError(
+                    f"{_where(path, section)} has unknown key {key!r}"
+                    f"{_suggest(key, list(SCHEMA[section]))}.")
+    for section in REQUIRED_SECTIONS:
+        if section not in raw:
+            raise GridplanError(f"{path.name}: the [{section}] section is missing.")
+
+
+class _Reader:
+    """Typed access to one section, raising one-sentence errors."""
+
+    def __init__(self, path: Path, section: str, body: dict[str, Any]):
+        self.path, self.section, self.body = path, section, body
+
+    def where(self, key: str) -> str:
+        return _where(self.path, self.section, key)
+
+    def get(self, key: str, kind: str, default: Any = None, required: bool = False) -> Any:
+        if key not in self.body:
+            if required:
+                raise GridplanError(f"{self.where(key)} is missing.")
+            return default
+        value = self.body[key]
+        if kind == "str" and not isinstance(value, str):
+            raise GridplanError(f"{self.where(key)} must be text, got {value!r}.")
+        if kind == "int" and (isinstance(value, bool) or not isinstance(value, int)):
+            raise GridplanError(f"{self.where(key)} must be a whole number, got {value!r}.")
+        if kind == "number":
+            if isinstance(value, bool) or not isinstance(value, (int, float)):
+                raise GridplanError(f"{self.where(key)} must be a number, got {value!r}.")
+            if not math.isfinite(value):
+                raise GridplanError(f"{self.where(key)} must be finite, got {value!r}.")
+            value = float(value)
+        if kind == "list" and not isinstance(value, list):
+            raise GridplanError(f"{self.where(key)} must be a list, got {value!r}.")
+        if kind == "table" and not isinstance(value, dict):
+            raise GridplanError(f"{self.where(key)} must be a table, got {value!r}.")
+        return value
+
+
+def _check_ascending(where: str, values: list[Any]) -> None:
+    if not values:
+        raise GridplanError(f"{where} is empty; give at least one value.")
+    if len(set(map(repr, values))) != len(values):
+        raise GridplanError(f"{where} has duplicated values: {values!r}.")
+    if any(values[i] >= values[i + 1] for i in range(len(values) - 1)):
+        raise GridplanError(f"{where} must be sorted ascending, got {values!r}.")
+
+
+def _read_axis(reader: _Reader, key: str, default_param: str | None,
+               required: bool) -> Axis:
+    where = reader.where(key)
+    table = reader.get(key, "table", required=required)
+    if table is None:
+        return Axis(param=None, values=(None,))
+    for k in table:
+        if k not in AXIS_KEYS:
+            raise GridplanError(f"{where} has unknown key {k!r}{_suggest(k, list(AXIS_KEYS))}.")
+    if "features" in table:
+        if key != "capacity":
+            raise GridplanError(f"{where}: feature sets belong on the capacity axis only.")
+        if "values" in table:
+            raise GridplanError(f"{where}: give either values or features, not both.")
+        return _read_feature_sets(where, table["features"])
+    if "values" not in table:
+        raise GridplanError(f"{where}.values is missing.")
+    values = table["values"]
+    if not isinstance(values, list):
+        raise GridplanError(f"{where}.values must be a list, got {values!r}.")
+    for v in values:
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            raise GridplanError(f"{where}.values must hold finite numbers, got {v!r}.")
+    _check_ascending(f"{where}.values", values)
+    param = table.get("param", default_param)
+    if not isinstance(param, str) or not param:
+        raise GridplanError(f"{where}.param must name the estimator parameter, e.g. param = \"alpha\".")
+    return Axis(param=param, values=tuple(values))
+
+
+def _read_feature_sets(where: str, sets: Any) -> Axis:
+    if not isinstance(sets, list) or not sets or not all(
+            isinstance(s, list) and s and all(isinstance(c, str) for c in s) for s in sets):
+        raise GridplanError(
+            f"{where}.features must be a list of non-empty lists of column names, "
+            f"e.g. [[\"temp\"], [\"temp\", \"humidity\"]].")
+    for i in range(1, len(sets)):
+        if not set(sets[i - 1]) < set(sets[i]):
+            raise GridplanError(
+                f"{where}.features must be nested, each set adding columns to the one "
+                f"before; set {i + 1} {sets[i]!r} does not extend {sets[i - 1]!r}.")
+    for s in sets:
+        if len(set(s)) != len(s):
+            raise GridplanError(f"{where}.features repeats a column in {s!r}.")
+    frozen = tuple(tuple(s) for s in sets)
+    return Axis(param=None, values=tuple(range(1, len(sets) + 1)), feature_sets=frozen)
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a config file; paths inside are resolved relative to it."""
+    path = Path(path)
+    if not path.is_file():
+        raise GridplanError(f"config file {str(path)!r} does not exist.")
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise GridplanError(f"config file {str(path)!r} cannot be read: {exc}.") from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise GridplanError(f"{path.name} is not valid TOML: {exc}.") from None
+    return parse_config(raw, path.resolve(), text)
+
+
+def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
+    """Validate an already-parsed TOML document."""
+    _check_keys(path, raw)
+    data = _Reader(path, "data", raw["data"])
+    model = _Reader(path, "model", raw["model"])
+    sizes = _Reader(path, "sizes", raw.get("sizes", {}))
+    resampling = _Reader(path, "resampling", raw.get("resampling", {}))
+    goal = _Reader(path, "goal", raw.get("goal", {}))
+    costs = _Reader(path, "costs", raw.get("costs", {}))
+    run = _Reader(path, "run", raw.get("run", {}))
+
+    data_path = data.get("path", "str", required=True)
+    resolved_data = (path.parent / data_path).resolve()
+    target = data.get("target", "str", required=True)
+    task = data.get("task", "str", default="regression")
+    if task not in TASKS:
+        raise GridplanError(f"{data.where('task')} must be one of {', '.join(TASKS)}, got {task!r}"
+                            f"{_suggest(task, list(TASKS))}.")
+    features = data.get("features", "list")
+    if features is not None:
+        if not features or not all(isinstance(c, str) for c in features):
+            raise GridplanError(f"{data.where('features')} must be a non-empty list of column names.")
+        if len(set(features)) != len(features):
+            raise GridplanError(f"{data.where('features')} names a column twice.")
+        if target in features:
+            raise GridplanError(f"{data.where('features')} includes the target column {target!r}.")
+        features = tuple(features)
+    missing = data.get("missing", "str", default="refuse")
+    if missing not in ("refuse", "impute"):
+        raise GridplanError(f"{data.where('missing')} must be \"refuse\" or \"impute\", got {missing!r}.")
+
+    family = model.get("family", "str")
+    estimator = model.get("estimator", "str")
+    if (family is None) == (estimator is None):
+        raise GridplanError(f"{_where(path, 'model')} needs exactly one of family = "
+                            f"\"poly-ridge\"|\"tree\" or estimator = \"sklearn....\".")
+    if family is not None and family not in FAMILIES:
+        raise GridplanError(f"{model.where('family')} must be one of {', '.join(FAMILIES)}, "
+                            f"got {family!r}{_suggest(family, list(FAMILIES))}.")
+    params = model.get("params", "table", default={})
+    capacity = _read_axis(model, "capacity", DEFAULT_CAPACITY_PARAM.get(family or ""),
+                          required=True)
+    regularization = _read_axis(model, "regularization",
+                                DEFAULT_REGULARIZATION_PARAM.get(family or ""), required=False)
+    for axis_name, axis in (("capacity", capacity), ("regularization", regularization)):
+        if axis.param and axis.param in params:
+            raise GridplanError(f"{model.where('params')} sets {axis.param!r}, which the "
+                                f"{axis_name} axis already varies.")
+    if family is not None and capacity.param is not None and capacity.feature_sets is None:
+        _check_family_axis(model.where("capacity"), family, capacity)
+    if family is not None and regularization.param is not None:
+        _check_family_axis(model.where("regularization"), family, regularization)
+
+    size_values = sizes.get("values", "list")
+    if size_values is not None:
+        for v in size_values:
+            if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
+                raise GridplanError(f"{sizes.where('values')} must hold positive whole numbers, got {v!r}.")
+        _check_ascending(sizes.where("values"), size_values)
+        size_values = tuple(size_values)
+    size_count = sizes.get("count", "int", default=8)
+    if size_count < 1:
+        raise GridplanError(f"{sizes.where('count')} must be at least 1, got {size_count}.")
+    smallest = sizes.get("smallest", "int")
+    if smallest is not None and smallest < 1:
+        raise GridplanError(f"{sizes.where('smallest')} must be positive, got {smallest}.")
+
+    folds = resampling.get("folds", "int", default=5)
+    if folds < 2:
+        raise GridplanError(f"{resampling.where('folds')} must be at least 2, got {folds}.")
+    repeats = resampling.get("repeats", "int", default=1)
+    if repeats < 1:
+        raise GridplanError(f"{resampling.where('repeats')} must be at least 1, got {repeats}.")
+    seed = resampling.get("seed", "int", default=0)
+    if seed < 0:
+        raise GridplanError(f"{resampling.where('seed')} must be zero or positive, got {seed}.")
+
+    metric = goal.get("metric", "str", default=DEFAULT_METRIC[task])
+    allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
+    if metric not in allowed:
+        raise GridplanError(f"{goal.where('metric')} {metric!r} does not fit a {task} task; "
+                            f"use one of {', '.join(allowed)}.")
+    target_error = goal.get("target", "number")
+    if target_error is not None and target_error <= 0:
+        raise GridplanError(f"{goal.where('target')} must be a positive error, got {target_error:g}.")
+    confidence = goal.get("confidence", "number", default=0.9)
+    if not 0.5 <= confidence < 1:
+        raise GridplanError(f"{goal.where('confidence')} must lie in [0.5, 1), got {confidence:g}.")
+
+    cost_values = {}
+    for key in ("per_sample", "capacity_step", "regularization_step", "per_fit_second"):
+        value = costs.get(key, "number")
+        if value is not None:
+            if value < 0:
+                raise GridplanError(f"{costs.where(key)} must not be negative, got {value:g}.")
+            cost_values[key] = value
+    max_samples = costs.get("max_samples", "int")
+    if max_samples is not None and max_samples < 1:
+        raise GridplanError(f"{costs.where('max_samples')} must be positive, got {max_samples}.")
+    groups = costs.get("feature_groups", "table", default={})
+    for name, value in groups.items():
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or value < 0:
+            raise GridplanError(f"{costs.where('feature_groups')}.{name} must be a non-negative "
+                                f"number, got {value!r}.")
+    cost_obj = Costs(**cost_values, max_samples=max_samples,
+                     feature_groups={k: float(v) for k, v in groups.items()})
+
+    jobs = run.get("jobs", "int", default=-1)
+    if jobs == 0:
+        raise GridplanError(f"{run.where('jobs')} must not be 0; use -1 for all cores or a positive count.")
+    scheduler = run.get("scheduler", "str")
+    limit = run.get("fit_time_limit", "number")
+    if limit is not None and limit <= 0:
+        raise GridplanError(f"{run.where('fit_time_limit')} must be positive seconds, got {limit:g}.")
+    name = run.get("name", "str", default=path.stem)
+    if not name or "/" in name or "\\" in name or name in (".", ".."):
+        raise GridplanError(f"{run.where('name')} must be a plain folder name, got {name!r}.")
+
+    return Config(
+        source=path, text=text, data_path=resolved_data, target=target, task=task,
+        features=features, missing=missing, family=family, estimator=estimator,
+        params=dict(params), capacity=capacity, regularization=regularization,
+        size_values=size_values, size_count=size_count, smallest_size=smallest,
+        folds=folds, repeats=repeats, seed=seed, metric=metric,
+        target_error=target_error, confidence=confidence, costs=cost_obj, jobs=jobs,
+        scheduler=scheduler, fit_time_limit=limit, name=name)
+
+
+def _check_family_axis(where: str, family: str, axis: Axis) -> None:
+    """Built-in families know which parameters they have and what values fit."""
+    known = {"poly-ridge": {"degree", "alpha"},
+             "tree": {"max_depth", "min_samples_leaf", "min_samples_split", "ccp_alpha",
+                      "max_leaf_nodes"}}[family]
+    if axis.param not in known:
+        raise GridplanError(f"{where}.param {axis.param!r} is not a parameter of the {family} "
+                            f"family{_suggest(axis.param, sorted(known))}; it has "
+                            f"{', '.join(sorted(known))}.")
+    integer_params = {"degree", "max_depth", "min_samples_leaf", "min_samples_split",
+                      "max_leaf_nodes"}
+    for v in axis.values:
+        if axis.param in integer_params and (not isinstance(v, int) or v < 1):
+            raise GridplanError(f"{where}.values for {axis.param!r} must be positive whole "
+                                f"numbers, got {v!r}.")
+        if axis.param in ("alpha", "ccp_alpha") and v < 0:
+            raise GridplanError(f"{where}.values for {axis.param!r} must not be negative, got {v!r}.")

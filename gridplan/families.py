@@ -1,0 +1,197 @@
+"""Model families: the plain scikit-learn pipeline for any grid setting.
+
+Built in: `poly-ridge` (polynomial features -> scaling -> ridge; RidgeClassifier
+for classification), `poly-logistic` (the same with logistic regression,
+C = 1/alpha), `tree` (decision tree). Any scikit-learn estimator can be named by
+import path; paths outside `sklearn.` need an explicit opt-in.
+"""
+
+from __future__ import annotations
+
+import importlib
+import inspect
+from dataclasses import dataclass
+from typing import Any
+
+from sklearn.base import clone, is_classifier, is_regressor
+from sklearn.compose import ColumnTransformer
+from sklearn.impute import SimpleImputer
+from sklearn.linear_model import LogisticRegression, Ridge, RidgeClassifier
+from sklearn.pipeline import Pipeline
+from sklearn.preprocessing import OneHotEncoder, PolynomialFeatures, StandardScaler
+from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
+
+from gridplan.config import Config, _suggest
+from gridplan.data import Dataset
+from gridplan.errors import GridplanError
+
+POLY_FAMILIES = ("poly-ridge", "poly-logistic")
+
+
+@dataclass(frozen=True)
+class ModelPlan:
+    """Everything needed to build the plain model for any setting of a grid."""
+
+    family: str | None               # built-in family, or None for an estimator path
+    estimator_cls: type | None       # the class named by an import path
+    task: str
+    params: dict[str, Any]
+    capacity_param: str | None
+    capacity_values: tuple[Any, ...]
+    feature_sets: tuple[tuple[str, ...], ...] | None
+    regularization_param: str | None
+    regularization_values: tuple[Any, ...]
+    numeric: tuple[str, ...]
+    categorical: tuple[str, ...]
+    impute: bool
+    seed: int
+
+    def columns(self, capacity_index: int) -> tuple[str, ...]:
+        """Feature columns used at a capacity step (all, unless the axis is feature sets)."""
+        if self.feature_sets is not None:
+            return self.feature_sets[capacity_index]
+        return self.numeric + self.categorical
+
+    def setting_params(self, capacity_index: int, regularization_index: int) -> dict[str, Any]:
+        """The estimator parameters of one grid setting (feature sets excluded)."""
+        out = dict(self.params)
+        if self.capacity_param is not None and self.feature_sets is None:
+            out[self.capacity_param] = self.capacity_values[capacity_index]
+        if self.regularization_param is not None:
+            out[self.regularization_param] = self.regularization_values[regularization_index]
+        return out
+
+
+def resolve_family(config: Config) -> str | None:
+    """The built-in family name; poly-ridge means poly-logistic when log loss is asked."""
+    if config.family == "poly-ridge" and config.task == "classification" \
+            and config.metric == "log_loss":
+        return "poly-logistic"
+    return config.family
+
+
+def import_estimator(path: str, allow_any_import: bool) -> type:
+    """Import an estimator class by dotted path, refusing non-scikit-learn code by default."""
+    if not path.startswith("sklearn.") and not allow_any_import:
+        raise GridplanError(f"estimator {path!r} is outside scikit-learn; gridplan runs only "
+                            f"sklearn.* estimators unless you pass --allow-any-estimator.")
+    module_name, _, attr = path.rpartition(".")
+    if not module_name:
+        raise GridplanError(f"estimator {path!r} must be a dotted import path such as "
+                            f"\"sklearn.ensemble.RandomForestRegressor\".")
+    try:
+        module = importlib.import_module(module_name)
+    except ImportError as exc:
+        raise GridplanError(f"estimator module {module_name!r} cannot be imported: {exc}.") from None
+    if not hasattr(module, attr):
+        names = [n for n in dir(module) if not n.startswith("_")]
+        raise GridplanError(f"module {module_name!r} has no estimator {attr!r}{_suggest(attr, names)}.")
+    cls = getattr(module, attr)
+    if not inspect.isclass(cls) or not hasattr(cls, "fit") or not hasattr(cls, "get_params"):
+        raise GridplanError(f"{path!r} is not a scikit-learn estimator class.")
+    return cls
+
+
+def plan_model(config: Config, dataset: Dataset, *, allow_any_import: bool = False) -> ModelPlan:
+    """Check the model section against the estimator and the data; return a ModelPlan."""
+    family = resolve_family(config)
+    cls = None
+    if config.estimator is not None:
+        cls = import_estimator(config.estimator, allow_any_import)
+    plan = ModelPlan(
+        family=family, estimator_cls=cls, task=config.task, params=dict(config.params),
+        capacity_param=config.capacity.param, capacity_values=config.capacity.values,
+        feature_sets=config.capacity.feature_sets,
+        regularization_param=config.regularization.param,
+        regularization_values=config.regularization.values,
+        numeric=dataset.numeric, categorical=dataset.categorical,
+        impute=config.missing == "impute", seed=config.seed)
+    _check_parameters(config, plan)
+    return plan
+
+
+def _check_parameters(config: Config, plan: ModelPlan) -> None:
+    """Every parameter the config sets must exist on the model; the task must fit it."""
+    name = config.source.name
+    model = build_model(plan, 0, 0, check=False)
+    final = model.steps[-1][1]
+    if plan.estimator_cls is not None:
+        if config.task == "regression" and is_classifier(final):
+            raise GridplanError(f"{name}: {config.estimator} is a classifier but the task is regression.")
+        if config.task == "classification" and is_regressor(final):
+            raise GridplanError(f"{name}: {config.estimator} is a regressor but the task is classification.")
+    available = set(model.get_params(deep=True))
+    short = {k[len("fit__"):]: k for k in available
+             if k.startswith("fit__") and k.count("__") == 1}
+    if plan.family in POLY_FAMILIES:
+        short.update({"degree": "poly__degree", "alpha": "fit__alpha"})
+    for label, param in (("capacity", plan.capacity_param if plan.feature_sets is None else None),
+                         ("regularization", plan.regularization_param)):
+        if param is not None and param not in short:
+            raise GridplanError(f"{name}: [model] {label}.param {param!r} is not a parameter of "
+                                f"{config.model_name}{_suggest(param, sorted(short))}.")
+    for param in plan.params:
+        if param not in short:
+            raise GridplanError(f"{name}: [model] params sets {param!r}, which "
+                                f"{config.model_name} does not have{_suggest(param, sorted(short))}.")
+    try:
+        for ci in range(len(plan.capacity_values)):
+            for ri in range(len(plan.regularization_values)):
+                build_model(plan, ci, ri, check=True)
+    except (TypeError, ValueError) as exc:
+        raise GridplanError(f"{name}: [model] values are not accepted by {config.model_name}: {exc}.") from None
+
+
+def make_encoder(plan: ModelPlan, capacity_index: int) -> ColumnTransformer:
+    """One-hot for categoricals (fitted on the training part only), numeric passed through."""
+    columns = plan.columns(capacity_index)
+    numeric = [c for c in plan.numeric if c in columns]
+    categorical = [c for c in plan.categorical if c in columns]
+    numeric_step: Any = SimpleImputer(strategy="median") if plan.impute else "passthrough"
+    one_hot = OneHotEncoder(handle_unknown="ignore", sparse_output=False)
+    categorical_step: Any = (Pipeline([("fill", SimpleImputer(strategy="most_frequent")),
+                                       ("one_hot", one_hot)]) if plan.impute else one_hot)
+    parts = []
+    if numeric:
+        parts.append(("numeric", numeric_step, numeric))
+    if categorical:
+        parts.append(("categorical", categorical_step, categorical))
+    return ColumnTransformer(parts, sparse_threshold=0.0, verbose_feature_names_out=False)
+
+
+def build_model(plan: ModelPlan, capacity_index: int, regularization_index: int,
+                *, check: bool = True) -> Pipeline:
+    """The plain scikit-learn pipeline for one grid setting."""
+    params = plan.setting_params(capacity_index, regularization_index)
+    encoder = make_encoder(plan, capacity_index)
+    if plan.family in POLY_FAMILIES:
+        degree = int(params.pop("degree", 1))
+        alpha = params.pop("alpha", 1.0)
+        if plan.family == "poly-logistic":
+            last: Any = LogisticRegression(C=1.0 / alpha if alpha > 0 else 1e12,
+                                           max_iter=params.pop("max_iter", 1000), **params)
+        elif plan.task == "classification":
+            last = RidgeClassifier(alpha=alpha, **params)
+        else:
+            last = Ridge(alpha=alpha, **params)
+        steps = [("encode", encoder),
+                 ("poly", PolynomialFeatures(degree=degree, include_bias=False)),
+                 ("scale", StandardScaler()), ("fit", last)]
+    elif plan.family == "tree":
+        cls = DecisionTreeClassifier if plan.task == "classification" else DecisionTreeRegressor
+        params.setdefault("random_state", plan.seed)
+        steps = [("encode", encoder), ("fit", cls(**params))]
+    else:
+        assert plan.estimator_cls is not None
+        estimator = plan.estimator_cls()
+        if "random_state" in estimator.get_params() and "random_state" not in params:
+            params["random_state"] = plan.seed
+        steps = [("encode", encoder), ("fit", clone(estimator).set_params(**params))]
+    model = Pipeline(steps)
+    if check:
+        # parameter validation without fitting, where the estimator offers it
+        final = model.steps[-1][1]
+        validate = getattr(final, "_validate_params", None)
+        if callable(validate):
+            validate()
+    return model

@@ -1,0 +1,260 @@
+"""Evaluate a grid: split it into tasks, run them in parallel, stream rows to the store.
+
+A task is the unit a worker runs. Plain tasks fit one pipeline for one
+(capacity, regularisation, size, fold). Fast-path tasks cover many cells at
+once (every alpha and degree of one training subset; every depth of one tree)
+and give the same numbers as the plain fits (see `gridplan.fastpaths`).
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from dataclasses import dataclass
+from typing import Callable, Iterator
+
+import numpy as np
+from sklearn.base import clone
+
+from gridplan import metrics
+from gridplan.families import POLY_FAMILIES, ModelPlan, build_model, make_encoder
+from gridplan.spec import GridSpec
+from gridplan.store import FoldRow, Store
+
+ProgressCallback = Callable[[int, int], None]   # (fits done, fits total)
+
+FLUSH_SECONDS = 0.5
+FLUSH_ROWS = 500
+
+
+@dataclass(frozen=True)
+class Task:
+    """Cells one worker computes together."""
+
+    kind: str                          # "plain", "ridge-path" or "tree-path"
+    capacity_indices: tuple[int, ...]
+    regularization_indices: tuple[int, ...]
+    size_index: int
+    fold_index: int
+
+    @property
+    def n_fits(self) -> int:
+        return len(self.capacity_indices) * len(self.regularization_indices)
+
+
+@dataclass(frozen=True)
+class Workload:
+    """What every task needs; sent to workers once per batch (or once per cluster)."""
+
+    X: object                # pandas DataFrame of features
+    y: np.ndarray
+    labels: np.ndarray | None
+    plan: ModelPlan
+    folds: tuple
+    sizes: tuple[int, ...]
+    metric: str
+
+
+def workload_of(spec: GridSpec) -> Workload:
+    return Workload(X=spec.dataset.X, y=spec.dataset.y, labels=spec.dataset.labels,
+                    plan=spec.plan, folds=spec.folds, sizes=spec.sizes,
+                    metric=spec.config.metric)
+
+
+def fast_path_kind(plan: ModelPlan, metric: str) -> str | None:
+    """Which fast path a grid can take, or None for plain fits."""
+    from gridplan.fastpaths import has_fast_path
+    if plan.family is None:
+        return None
+    if not has_fast_path(plan.family, plan.regularization_param, plan.task, metric):
+        return None
+    if plan.family == "poly-ridge":
+        return "ridge-path"
+    if plan.family == "tree" and plan.feature_sets is None:
+        return "tree-path"
+    return None
+
+
+def build_tasks(spec: GridSpec, done: set[tuple[int, int, int, int, int]]) -> list[Task]:
+    """Tasks covering every cell x fold not yet finished."""
+    plan = spec.plan
+    n_cap, n_reg = len(plan.capacity_values), len(plan.regularization_values)
+    kind = fast_path_kind(plan, spec.config.metric)
+    tasks = []
+    for size_index in range(len(spec.sizes)):
+        for fold_index, fold in enumerate(spec.folds):
+            def missing(ci: int, ri: int) -> bool:
+                return (ci, ri, size_index, fold.repeat, fold.fold) not in done
+            if kind == "ridge-path":
+                groups = ([tuple(range(n_cap))] if plan.feature_sets is None
+                          else [(ci,) for ci in range(n_cap)])
+                for caps in groups:
+                    if any(missing(ci, ri) for ci in caps for ri in range(n_reg)):
+                        tasks.append(Task(kind, caps, tuple(range(n_reg)), size_index, fold_index))
+            elif kind == "tree-path":
+                for ri in range(n_reg):
+                    if any(missing(ci, ri) for ci in range(n_cap)):
+                        tasks.append(Task(kind, tuple(range(n_cap)), (ri,), size_index, fold_index))
+            else:
+                for ci in range(n_cap):
+                    for ri in range(n_reg):
+                        if missing(ci, ri):
+                            tasks.append(Task("plain", (ci,), (ri,), size_index, fold_index))
+    return tasks
+
+
+_CONTROLLER = None
+
+
+def _one_blas_thread():
+    """A context that limits BLAS/OpenMP to one thread (the same numbers on any worker)."""
+    global _CONTROLLER
+    from threadpoolctl import ThreadpoolController
+    if _CONTROLLER is None:
+        _CONTROLLER = ThreadpoolController()
+    return _CONTROLLER.limit(limits=1)
+
+
+def run_task(task: Task, work: Workload) -> list[FoldRow]:
+    """Compute one task's rows; a failure is recorded per row, never raised."""
+    fold = work.folds[task.fold_index]
+    size = work.sizes[task.size_index]
+    with _one_blas_thread(), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        started = time.perf_counter()
+        try:
+            if task.kind == "ridge-path":
+                results = _ridge_path(task, work, fold, size)
+            elif task.kind == "tree-path":
+                results = _tree_path(task, work, fold, size)
+            else:
+                results = {(task.capacity_indices[0], task.regularization_indices[0]):
+                           _plain_fit(task, work, fold, size)}
+        except Exception as exc:  # one failing task never stops the run
+            message = f"{type(exc).__name__}: {str(exc).strip().splitlines()[0] if str(exc).strip() else ''}"
+            results = {(ci, ri): (None, None, "failed", "plain" if task.kind == "plain" else task.kind,
+                                  message[:500])
+                       for ci in task.capacity_indices for ri in task.regularization_indices}
+        elapsed = time.perf_counter() - started
+    per_fit = elapsed / max(1, len(results))
+    return [FoldRow(capacity_index=ci, regularization_index=ri, size_index=task.size_index,
+                    repeat=fold.repeat, fold=fold.fold, train_size=size,
+                    train_error=tr, validation_error=va, fit_seconds=per_fit,
+                    status=status, path=path, message=note)
+            for (ci, ri), (tr, va, status, path, note) in sorted(results.items())]
+
+
+def _errors(model, work: Workload, X_fit, y_fit, X_val, y_val) -> tuple[float, float]:
+    """Training error on the fitted rows and validation error on the held-out rows."""
+    if metrics.needs_proba(work.metric):
+        p_fit = metrics.proba_for_labels(model, X_fit, work.labels)
+        p_val = metrics.proba_for_labels(model, X_val, work.labels)
+    else:
+        p_fit, p_val = model.predict(X_fit), model.predict(X_val)
+    return (metrics.error_of(work.metric, y_fit, p_fit, work.labels),
+            metrics.error_of(work.metric, y_val, p_val, work.labels))
+
+
+def _plain_fit(task: Task, work: Workload, fold, size: int):
+    ci, ri = task.capacity_indices[0], task.regularization_indices[0]
+    rows = fold.train[:size]
+    X_fit, y_fit = work.X.iloc[rows], work.y[rows]
+    X_val, y_val = work.X.iloc[fold.test], work.y[fold.test]
+    model = build_model(work.plan, ci, ri, check=False)
+    model.fit(X_fit, y_fit)
+    train_error, validation_error = _errors(model, work, X_fit, y_fit, X_val, y_val)
+    return train_error, validation_error, "ok", "plain", ""
+
+
+def _encoded(work: Workload, capacity_index: int, fold, size: int):
+    """Encode the training subset and held-out rows with an encoder fitted on the subset."""
+    rows = fold.train[:size]
+    encoder = clone(make_encoder(work.plan, capacity_index))
+    Z_fit = np.asarray(encoder.fit_transform(work.X.iloc[rows]), dtype=float)
+    Z_val = np.asarray(encoder.transform(work.X.iloc[fold.test]), dtype=float)
+    return Z_fit, work.y[rows], Z_val, work.y[fold.test]
+
+
+def _cell(fast) -> tuple:
+    return (fast.train_error, fast.validation_error, "ok", fast.path, fast.note)
+
+
+def _ridge_path(task: Task, work: Workload, fold, size: int) -> dict:
+    from gridplan.fastpaths import poly_ridge_grid
+    plan = work.plan
+    Z_fit, y_fit, Z_val, y_val = _encoded(work, task.capacity_indices[0], fold, size)
+    if plan.feature_sets is None:
+        degrees = [int(plan.capacity_values[ci]) for ci in task.capacity_indices]
+    else:
+        degrees = [int(plan.params.get("degree", 1))]
+    alphas = [float(plan.regularization_values[ri]) if plan.regularization_param
+              else float(plan.params.get("alpha", 1.0)) for ri in task.regularization_indices]
+    grid = poly_ridge_grid(Z_fit, y_fit, Z_val, y_val, degrees, alphas, task=plan.task,
+                           metric=work.metric, labels=work.labels)
+    out = {}
+    for i, ci in enumerate(task.capacity_indices):
+        row = grid[i] if plan.feature_sets is None else grid[0]
+        for j, ri in enumerate(task.regularization_indices):
+            out[(ci, ri)] = _cell(row[j])
+    return out
+
+
+def _tree_path(task: Task, work: Workload, fold, size: int) -> dict:
+    from gridplan.fastpaths import tree_depth_grid
+    plan = work.plan
+    ri = task.regularization_indices[0]
+    Z_fit, y_fit, Z_val, y_val = _encoded(work, 0, fold, size)
+    params = plan.setting_params(0, ri)
+    params.pop(plan.capacity_param, None)
+    random_state = params.pop("random_state", plan.seed)
+    depths = [int(plan.capacity_values[ci]) for ci in task.capacity_indices]
+    cells = tree_depth_grid(Z_fit, y_fit, Z_val, y_val, depths, task=plan.task,
+                            metric=work.metric, labels=work.labels, tree_params=params,
+                            random_state=random_state)
+    return {(ci, ri): _cell(cells[i]) for i, ci in enumerate(task.capacity_indices)}
+
+
+def execute(tasks: list[Task], work: Workload, *, jobs: int = 1,
+            backend: str | None = None) -> Iterator[list[FoldRow]]:
+    """Yield each task's rows as it finishes (in any order)."""
+    if jobs == 1 and backend is None:
+        for task in tasks:
+            yield run_task(task, work)
+        return
+    from joblib import Parallel, delayed, parallel_config
+    with parallel_config(backend=backend or "loky", n_jobs=jobs, inner_max_num_threads=1):
+        parallel = Parallel(return_as="generator_unordered", batch_size="auto")
+        yield from parallel(delayed(run_task)(task, work) for task in tasks)
+
+
+def run_grid(spec: GridSpec, store: Store, *, jobs: int = 1, backend: str | None = None,
+             progress: ProgressCallback | None = None) -> int:
+    """Run every unfinished task, writing rows to the store as they arrive.
+
+    Returns the number of fits written. On interruption every finished row has
+    already been committed.
+    """
+    done = store.finished_keys()
+    tasks = build_tasks(spec, done)
+    total = spec.n_fits
+    finished = len(done)
+    if progress:
+        progress(finished, total)
+    work = workload_of(spec)
+    buffer: list[FoldRow] = []
+    last_flush = time.monotonic()
+    written = 0
+    try:
+        for rows in execute(tasks, work, jobs=jobs, backend=backend):
+            fresh = [r for r in rows if (r.capacity_index, r.regularization_index, r.size_index,
+                                         r.repeat, r.fold) not in done]
+            buffer.extend(fresh)
+            finished += len(fresh)
+            if len(buffer) >= FLUSH_ROWS or time.monotonic() - last_flush > FLUSH_SECONDS:
+                written += store.write_rows(buffer)
+                buffer, last_flush = [], time.monotonic()
+            if progress:
+                progress(finished, total)
+    finally:
+        written += store.write_rows(buffer)
+    return written

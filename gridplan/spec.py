@@ -1,0 +1,97 @@
+"""Resolve a config against its data into the exact grid a run measures."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass
+from typing import Any
+
+from gridplan.config import Config
+from gridplan.data import Dataset, load_dataset
+from gridplan.errors import GridplanError
+from gridplan.families import ModelPlan, plan_model
+from gridplan.splits import Fold, make_folds, size_ladder, smallest_training_fold
+
+
+@dataclass(frozen=True)
+class GridSpec:
+    """A config resolved against its data: model plan, folds and training sizes."""
+
+    config: Config
+    dataset: Dataset
+    plan: ModelPlan
+    folds: tuple[Fold, ...]
+    sizes: tuple[int, ...]
+
+    @property
+    def n_settings(self) -> int:
+        return len(self.plan.capacity_values) * len(self.plan.regularization_values)
+
+    @property
+    def n_cells(self) -> int:
+        return self.n_settings * len(self.sizes)
+
+    @property
+    def n_fits(self) -> int:
+        return self.n_cells * len(self.folds)
+
+    def measuring_identity(self) -> dict[str, Any]:
+        """Everything that changes the measured numbers; a resumed run must match it."""
+        c = self.config
+        return {
+            "data": {"sha256": self.dataset.fingerprint, "target": c.target, "task": c.task,
+                     "features": list(self.dataset.numeric + self.dataset.categorical),
+                     "missing": c.missing},
+            "model": {"name": c.model_name, "resolved_family": self.plan.family,
+                      "params": _jsonable(c.params),
+                      "capacity": _axis_identity(c.capacity),
+                      "regularization": _axis_identity(c.regularization)},
+            "sizes": list(self.sizes),
+            "resampling": {"folds": c.folds, "repeats": c.repeats, "seed": c.seed},
+            "metric": c.metric,
+        }
+
+    def fingerprint(self) -> str:
+        """A short hash of the measuring identity."""
+        blob = json.dumps(self.measuring_identity(), sort_keys=True).encode()
+        return hashlib.sha256(blob).hexdigest()[:16]
+
+
+def _axis_identity(axis: Any) -> dict[str, Any]:
+    return {"param": axis.param, "values": _jsonable(list(axis.values)),
+            "features": [list(s) for s in axis.feature_sets] if axis.feature_sets else None}
+
+
+def _jsonable(value: Any) -> Any:
+    return json.loads(json.dumps(value, default=str))
+
+
+def resolve(config: Config, *, allow_any_import: bool = False) -> GridSpec:
+    """Load the data, check the model, build folds and the training-size ladder."""
+    dataset = load_dataset(config)
+    plan = plan_model(config, dataset, allow_any_import=allow_any_import)
+    classification = config.task == "classification"
+    if dataset.n_rows < 2 * config.folds:
+        raise GridplanError(f"{config.data_path.name} has {dataset.n_rows} rows, too few for "
+                            f"{config.folds} folds (need at least {2 * config.folds}).")
+    folds = make_folds(dataset.y, classification=classification, folds=config.folds,
+                       repeats=config.repeats, seed=config.seed)
+    full = smallest_training_fold(folds)
+    sizes = size_ladder(full, values=config.size_values, count=config.size_count,
+                        smallest=config.smallest_size, where=f"{config.source.name}: [sizes]")
+    if classification and sizes[0] < len(dataset.labels):
+        raise GridplanError(f"{config.source.name}: [sizes] smallest training size {sizes[0]} is "
+                            f"below the number of classes ({len(dataset.labels)}).")
+    return GridSpec(config=config, dataset=dataset, plan=plan, folds=tuple(folds), sizes=sizes)
+
+
+def identity_difference(old: dict[str, Any], new: dict[str, Any]) -> str:
+    """Name the first part of the measuring identity that differs, for messages."""
+    names = {"data": "the data (file contents, target, task or features)",
+             "model": "the [model] section", "sizes": "the training sizes",
+             "resampling": "the [resampling] section", "metric": "the metric"}
+    for key, label in names.items():
+        if old.get(key) != new.get(key):
+            return label
+    return "the config"

@@ -1,0 +1,72 @@
+"""Cross-validation folds, nested training subsets and the training-size ladder.
+
+Each training fold is put in a fixed random order once; the subset of size m is
+its first m rows, so smaller subsets are contained in larger ones. For
+classification the order interleaves the classes so that every prefix keeps
+the class proportions of the fold (up to rounding).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from sklearn.model_selection import RepeatedKFold, RepeatedStratifiedKFold
+
+from gridplan.errors import GridplanError
+
+
+@dataclass(frozen=True)
+class Fold:
+    """One resampling split: the ordered training rows and the held-out rows."""
+
+    repeat: int
+    fold: int
+    train: np.ndarray   # ordered: train[:m] is the subset of size m
+    test: np.ndarray
+
+
+def make_folds(y: np.ndarray, *, classification: bool, folds: int, repeats: int,
+               seed: int) -> list[Fold]:
+    """K folds x R repeats, stratified for classification, identical for a given seed."""
+    splitter_cls = RepeatedStratifiedKFold if classification else RepeatedKFold
+    splitter = splitter_cls(n_splits=folds, n_repeats=repeats, random_state=seed)
+    out = []
+    for k, (train, test) in enumerate(splitter.split(np.zeros(len(y)), y)):
+        repeat, fold = divmod(k, folds)
+        rng = np.random.default_rng([seed, repeat, fold])
+        order = _stratified_order(y[train], rng) if classification else rng.permutation(len(train))
+        out.append(Fold(repeat=repeat, fold=fold, train=train[order], test=test))
+    return out
+
+
+def _stratified_order(y_train: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """An order whose every prefix holds the classes in their fold proportions."""
+    keys = np.empty(len(y_train))
+    for label in np.unique(y_train):
+        members = np.flatnonzero(y_train == label)
+        ranks = rng.permutation(len(members))
+        keys[members] = (ranks + rng.uniform(size=len(members))) / len(members)
+    return np.argsort(keys, kind="stable")
+
+
+def size_ladder(full: int, *, values: tuple[int, ...] | None, count: int,
+                smallest: int | None, where: str = "[sizes]") -> tuple[int, ...]:
+    """Training sizes: the explicit list, or a geometric ladder ending at the full fold."""
+    if values is not None:
+        if values[-1] > full:
+            raise GridplanError(f"{where} values asks for {values[-1]} training rows, but a "
+                                f"training fold holds only {full}.")
+        return tuple(int(v) for v in values)
+    start = smallest if smallest is not None else max(10, full // 50)
+    if start > full:
+        raise GridplanError(f"{where} smallest = {start} is larger than a training fold ({full} rows).")
+    if count == 1 or start == full:
+        return (full,)
+    ladder = np.unique(np.round(np.geomspace(start, full, count)).astype(int))
+    return tuple(int(v) for v in ladder)
+
+
+def smallest_training_fold(folds: list[Fold]) -> int:
+    """The size every fold can supply: the smallest training fold."""
+    return min(len(f.train) for f in folds)

@@ -1,0 +1,164 @@
+"""The run store: one SQLite file per run folder, written as folds finish.
+
+The measuring side writes through `Store.write_rows`; the deciding side reads
+`Store.cells()`. Every write is one transaction, so a killed run leaves a
+consistent store that holds every committed row exactly once.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Iterable
+
+import pandas as pd
+
+from gridplan.errors import GridplanError
+
+STORE_NAME = "store.sqlite"
+CONFIG_COPY = "config.toml"
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS axes (
+    axis TEXT NOT NULL, idx INTEGER NOT NULL, label TEXT NOT NULL, value TEXT NOT NULL,
+    PRIMARY KEY (axis, idx));
+CREATE TABLE IF NOT EXISTS folds (
+    capacity_index INTEGER NOT NULL, regularization_index INTEGER NOT NULL,
+    size_index INTEGER NOT NULL, repeat INTEGER NOT NULL, fold INTEGER NOT NULL,
+    train_size INTEGER NOT NULL, train_error REAL, validation_error REAL,
+    fit_seconds REAL NOT NULL, status TEXT NOT NULL, path TEXT NOT NULL, message TEXT NOT NULL,
+    PRIMARY KEY (capacity_index, regularization_index, size_index, repeat, fold));
+"""
+
+ROW_FIELDS = ("capacity_index", "regularization_index", "size_index", "repeat", "fold",
+              "train_size", "train_error", "validation_error", "fit_seconds", "status",
+              "path", "message")
+
+EXPORT_COLUMNS = ["capacity", "regularization", "train_size", "repeat", "fold",
+                  "train_error", "validation_error", "fit_seconds", "status", "path",
+                  "message", "capacity_index", "regularization_index", "size_index"]
+
+
+@dataclass(frozen=True)
+class FoldRow:
+    """One fit: a (capacity, regularisation, size) cell on one fold of one repeat."""
+
+    capacity_index: int
+    regularization_index: int
+    size_index: int
+    repeat: int
+    fold: int
+    train_size: int
+    train_error: float | None
+    validation_error: float | None
+    fit_seconds: float
+    status: str          # "ok" or "failed"
+    path: str            # "plain", "svd", "plain-fallback", "tree-truncation"
+    message: str = ""
+
+    def astuple(self) -> tuple[Any, ...]:
+        return tuple(getattr(self, f) for f in ROW_FIELDS)
+
+
+class Store:
+    """A run's SQLite store."""
+
+    def __init__(self, path: Path):
+        self.path = Path(path)
+        try:
+            self.connection = sqlite3.connect(self.path, timeout=30.0)
+            self.connection.execute("PRAGMA journal_mode=WAL")
+            self.connection.execute("PRAGMA synchronous=NORMAL")
+            self.connection.executescript(SCHEMA)
+        except sqlite3.DatabaseError as exc:
+            raise GridplanError(f"store {self.path} cannot be opened: {exc}.") from None
+
+    @classmethod
+    def open_existing(cls, run_dir: Path) -> "Store":
+        """Open the store of a finished or partial run, refusing a folder without one."""
+        path = Path(run_dir) / STORE_NAME
+        if not path.is_file():
+            raise GridplanError(f"{run_dir} is not a gridplan run folder (no {STORE_NAME}).")
+        return cls(path)
+
+    def close(self) -> None:
+        self.connection.close()
+
+    def __enter__(self) -> "Store":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # -- metadata ---------------------------------------------------------
+    def set_meta(self, values: dict[str, Any]) -> None:
+        with self.connection:
+            self.connection.executemany(
+                "INSERT OR REPLACE INTO meta (key, value) VALUES (?, ?)",
+                [(k, json.dumps(v)) for k, v in values.items()])
+
+    def meta(self) -> dict[str, Any]:
+        rows = self.connection.execute("SELECT key, value FROM meta").fetchall()
+        return {k: json.loads(v) for k, v in rows}
+
+    def set_axes(self, axes: dict[str, list[tuple[str, Any]]]) -> None:
+        with self.connection:
+            self.connection.execute("DELETE FROM axes")
+            self.connection.executemany(
+                "INSERT INTO axes (axis, idx, label, value) VALUES (?, ?, ?, ?)",
+                [(axis, i, label, json.dumps(value))
+                 for axis, entries in axes.items() for i, (label, value) in enumerate(entries)])
+
+    def axes(self) -> dict[str, list[tuple[str, Any]]]:
+        out: dict[str, list[tuple[str, Any]]] = {}
+        for axis, _, label, value in self.connection.execute(
+                "SELECT axis, idx, label, value FROM axes ORDER BY axis, idx"):
+            out.setdefault(axis, []).append((label, json.loads(value)))
+        return out
+
+    # -- fold rows --------------------------------------------------------
+    def write_rows(self, rows: Iterable[FoldRow]) -> int:
+        """Insert or replace rows in one transaction; returns how many were written."""
+        batch = [r.astuple() for r in rows]
+        if not batch:
+            return 0
+        placeholders = ", ".join("?" for _ in ROW_FIELDS)
+        try:
+            with self.connection:
+                self.connection.executemany(
+                    f"INSERT OR REPLACE INTO folds ({', '.join(ROW_FIELDS)}) VALUES ({placeholders})",
+                    batch)
+        except sqlite3.OperationalError as exc:
+            raise GridplanError(f"cannot write to the store {self.path}: {exc}; finished cells "
+                                f"up to now are kept.") from None
+        return len(batch)
+
+    def finished_keys(self) -> set[tuple[int, int, int, int, int]]:
+        """Keys of fold rows that finished successfully (failed rows are retried)."""
+        rows = self.connection.execute(
+            "SELECT capacity_index, regularization_index, size_index, repeat, fold "
+            "FROM folds WHERE status = 'ok'")
+        return {tuple(r) for r in rows}
+
+    def fold_rows(self) -> pd.DataFrame:
+        """All fold rows with the index columns only."""
+        return pd.read_sql_query(
+            f"SELECT {', '.join(ROW_FIELDS)} FROM folds ORDER BY capacity_index, "
+            "regularization_index, size_index, repeat, fold", self.connection)
+
+    def cells(self) -> pd.DataFrame:
+        """The tidy per-fold table with axis labels (see EXPORT_COLUMNS)."""
+        frame = self.fold_rows()
+        axes = self.axes()
+        capacity = [label for label, _ in axes.get("capacity", [])]
+        regularization = [label for label, _ in axes.get("regularization", [])]
+        frame.insert(0, "capacity", [capacity[i] for i in frame["capacity_index"]])
+        frame.insert(1, "regularization", [regularization[i] for i in frame["regularization_index"]])
+        return frame[EXPORT_COLUMNS]
+
+    def integrity_ok(self) -> bool:
+        """SQLite's own integrity check."""
+        return self.connection.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
