@@ -45,7 +45,7 @@ def _describe(spec, run_dir: Path) -> str:
                 else f"{cap.param}: {', '.join(cap.labels)}")
     reg = c.regularization
     reg_text = f"{reg.param}: {', '.join(reg.labels)}" if reg.param else "none"
-    path = fast_path_kind(spec.plan, c.metric) or "plain fits"
+    path = (fast_path_kind(spec.plan, c.metric) if c.fast_path else None) or "plain fits"
     sizes = ", ".join(map(str, spec.sizes))
     lines = [
         ("config", str(c.source)),

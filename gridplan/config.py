@@ -33,7 +33,7 @@ SCHEMA: dict[str, dict[str, str]] = {
               "regularization_step": "number", "max_samples": "int",
               "feature_groups": "table", "per_fit_second": "number"},
     "run": {"jobs": "int", "scheduler": "str", "fit_time_limit": "number",
-            "name": "str"},
+            "name": "str", "fast_path": "bool"},
 }
 REQUIRED_SECTIONS = ("data", "model")
 AXIS_KEYS = ("param", "values", "features")
@@ -104,6 +104,7 @@ class Config:
     scheduler: str | None
     fit_time_limit: float | None
     name: str
+    fast_path: bool = True
 
     @property
     def model_name(self) -> str:
@@ -187,6 +188,8 @@ class _Reader:
             value = float(value)
         if kind == "list" and not isinstance(value, list):
             raise GridplanError(f"{self.where(key)} must be a list, got {value!r}.")
+        if kind == "bool" and not isinstance(value, bool):
+            raise GridplanError(f"{self.where(key)} must be true or false, got {value!r}.")
         if kind == "table" and not isinstance(value, dict):
             raise GridplanError(f"{self.where(key)} must be a table, got {value!r}.")
         return value
@@ -390,7 +393,8 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         size_values=size_values, size_count=size_count, smallest_size=smallest,
         folds=folds, repeats=repeats, seed=seed, metric=metric,
         target_error=target_error, confidence=confidence, costs=cost_obj, jobs=jobs,
-        scheduler=scheduler, fit_time_limit=limit, name=name)
+        scheduler=scheduler, fit_time_limit=limit, name=name,
+        fast_path=run.get("fast_path", "bool", default=True))
 
 
 def _check_family_axis(where: str, family: str, axis: Axis) -> None:

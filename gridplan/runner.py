@@ -79,7 +79,7 @@ def build_tasks(spec: GridSpec, done: set[tuple[int, int, int, int, int]]) -> li
     """Tasks covering every cell x fold not yet finished."""
     plan = spec.plan
     n_cap, n_reg = len(plan.capacity_values), len(plan.regularization_values)
-    kind = fast_path_kind(plan, spec.config.metric)
+    kind = fast_path_kind(plan, spec.config.metric) if spec.config.fast_path else None
     tasks = []
     for size_index in range(len(spec.sizes)):
         for fold_index, fold in enumerate(spec.folds):

@@ -44,7 +44,7 @@ class GridSpec:
                      "features": list(self.dataset.numeric + self.dataset.categorical),
                      "missing": c.missing},
             "model": {"name": c.model_name, "resolved_family": self.plan.family,
-                      "params": _jsonable(c.params),
+                      "params": _jsonable(c.params), "fast_path": c.fast_path,
                       "capacity": _axis_identity(c.capacity),
                       "regularization": _axis_identity(c.regularization)},
             "sizes": list(self.sizes),

@@ -1,0 +1,213 @@
+"""The grid runner against scikit-learn and against textbook results."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.model_selection import learning_curve
+
+from gridplan import api
+from gridplan.config import load_config
+from gridplan.errors import GridplanError
+from gridplan.families import build_model
+from gridplan.spec import resolve
+from tests.helpers import linear_data, quadratic_data, run_frame, without_times, write_config
+
+
+def _reference_errors(spec, ci, ri, scoring):
+    """scikit-learn's learning_curve on the same splits and nested subsets."""
+    model = build_model(spec.plan, ci, ri)
+    cv = [(f.train, f.test) for f in spec.folds]
+    _, train_scores, val_scores = learning_curve(
+        model, spec.dataset.X, spec.dataset.y, train_sizes=list(spec.sizes), cv=cv,
+        scoring=scoring, shuffle=False)
+    return -train_scores, -val_scores   # shape (sizes, folds)
+
+
+def _grid_errors(cells, ci, ri, n_sizes, n_folds):
+    sub = cells[(cells.capacity_index == ci) & (cells.regularization_index == ri)]
+    sub = sub.sort_values(["size_index", "repeat", "fold"])
+    return (sub.train_error.to_numpy().reshape(n_sizes, n_folds),
+            sub.validation_error.to_numpy().reshape(n_sizes, n_folds))
+
+
+@pytest.mark.parametrize("fast_path, tolerance", [(False, 1e-9), (True, 1e-6)])
+def test_cells_equal_sklearn_learning_curve_regression(tmp_path, fast_path, tolerance):
+    # Reference library: sklearn.model_selection.learning_curve on the same
+    # splits with shuffle=False takes train[:m], exactly our nested subsets.
+    frame = linear_data(240, 3, 0.5, seed=1)
+    frame["zone"] = np.random.default_rng(2).choice(["a", "b", "c"], size=len(frame))
+    run_dir, cells = run_frame(tmp_path, frame, {
+        "data": {"target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2, 3]},
+                  "regularization": {"values": [0.01, 1.0, 30.0]}},
+        "sizes": {"values": [15, 40, 120, 180]},
+        "resampling": {"folds": 4, "repeats": 2, "seed": 3},
+        "run": {"fast_path": fast_path}})
+    spec = resolve(load_config(tmp_path / "grid.toml"))
+    assert len(cells) == 3 * 3 * 4 * 8 and (cells.status == "ok").all()
+    for ci in range(3):
+        for ri in range(3):
+            ref_train, ref_val = _reference_errors(spec, ci, ri, "neg_mean_squared_error")
+            got_train, got_val = _grid_errors(cells, ci, ri, 4, 8)
+            np.testing.assert_allclose(got_train, ref_train, rtol=tolerance, atol=1e-12)
+            np.testing.assert_allclose(got_val, ref_val, rtol=tolerance)
+
+
+def test_cells_equal_sklearn_learning_curve_tree_classification(tmp_path):
+    # Reference library: sklearn learning_curve with scoring="accuracy";
+    # error rate = 1 - accuracy. Plain path (cost-complexity alpha).
+    rng = np.random.default_rng(5)
+    X = rng.normal(size=(300, 2))
+    y = np.where(X[:, 0] + 0.5 * X[:, 1] ** 2 + rng.normal(scale=0.5, size=300) > 0.4, "yes", "no")
+    frame = pd.DataFrame({"u": X[:, 0], "v": X[:, 1], "label": y})
+    _, cells = run_frame(tmp_path, frame, {
+        "data": {"target": "label", "task": "classification"},
+        "model": {"family": "tree", "capacity": {"values": [1, 3, 6]},
+                  "regularization": {"param": "ccp_alpha", "values": [0.0, 0.01]}},
+        "sizes": {"values": [20, 80, 200]},
+        "resampling": {"folds": 3, "repeats": 1, "seed": 0},
+        "goal": {"metric": "error_rate"}})
+    spec = resolve(load_config(tmp_path / "grid.toml"))
+    assert set(cells.path) == {"plain"}
+    for ci in range(3):
+        for ri in range(2):
+            ref_train, ref_val = _reference_errors(spec, ci, ri, "accuracy")
+            got_train, got_val = _grid_errors(cells, ci, ri, 3, 3)
+            np.testing.assert_allclose(got_train, 1 + ref_train, rtol=1e-9, atol=1e-12)
+            np.testing.assert_allclose(got_val, 1 + ref_val, rtol=1e-9, atol=1e-12)
+
+
+def test_log_loss_matches_sklearn_scorer(tmp_path):
+    # Reference library: scoring="neg_log_loss" in learning_curve.
+    rng = np.random.default_rng(8)
+    X = rng.normal(size=(240, 2))
+    y = (X[:, 0] - X[:, 1] + rng.normal(size=240) > 0).astype(int)
+    frame = pd.DataFrame({"a": X[:, 0], "b": X[:, 1], "cls": y})
+    _, cells = run_frame(tmp_path, frame, {
+        "data": {"target": "cls", "task": "classification"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2]},
+                  "regularization": {"values": [0.1, 10.0]}},
+        "sizes": {"values": [30, 150]}, "resampling": {"folds": 3},
+        "goal": {"metric": "log_loss"}})
+    spec = resolve(load_config(tmp_path / "grid.toml"))
+    assert spec.plan.family == "poly-logistic"
+    ref_train, ref_val = _reference_errors(spec, 1, 0, "neg_log_loss")
+    got_train, got_val = _grid_errors(cells, 1, 0, 2, 3)
+    np.testing.assert_allclose(got_val, ref_val, rtol=1e-9)
+    np.testing.assert_allclose(got_train, ref_train, rtol=1e-9)
+
+
+def test_ols_training_and_validation_mse_follow_textbook(tmp_path):
+    # Standard result: E[RSS] = sigma^2 (n - p), so E[training MSE] of OLS is
+    # sigma^2 (1 - p/n) with p counting the intercept; validation MSE tends to
+    # sigma^2 as n grows (Gaussian design: sigma^2 (1 + p/(n - p - 1)) roughly).
+    sigma, p_inputs = 1.0, 4
+    frame = linear_data(2000, p_inputs, sigma, seed=11)
+    _, cells = run_frame(tmp_path, frame, {
+        "data": {"target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1]},
+                  "regularization": {"values": [1e-9]}},
+        "sizes": {"values": [12, 20, 50, 1600]},
+        "resampling": {"folds": 5, "repeats": 10, "seed": 4}})
+    p = p_inputs + 1
+    for m, group in cells.groupby("train_size"):
+        expected = sigma ** 2 * (1 - p / m)
+        if m <= 50:  # small subsets of 2000 rows: the folds are nearly independent draws
+            spread = group.train_error.std(ddof=1) / np.sqrt(len(group))
+        else:  # large subsets share one noise realisation: sd of a chi-square mean
+            spread = sigma ** 2 * np.sqrt(2 / len(frame))
+        assert abs(group.train_error.mean() - expected) < 4 * spread, m
+    val = cells.groupby("train_size").validation_error.mean()
+    assert val.is_monotonic_decreasing
+    assert abs(val.loc[1600] - sigma ** 2 * (1 + p / (1600 - p - 1))) < 0.05
+
+
+def test_quadratic_interpolates_three_points_and_curves_move_the_right_way(tmp_path):
+    # Common practice, no published source: a quadratic fitted without
+    # regularisation to 3 or fewer points has zero training error; training
+    # error rises and validation error falls with size for a correct model.
+    frame = quadratic_data(600, 0.4, seed=2)
+    _, cells = run_frame(tmp_path, frame, {
+        "data": {"target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [2]},
+                  "regularization": {"values": [1e-12]}},
+        "sizes": {"values": [3, 10, 30, 100, 400]},
+        "resampling": {"folds": 5, "repeats": 4, "seed": 1}})
+    means = cells.groupby("train_size")[["train_error", "validation_error"]].mean()
+    assert cells[cells.train_size == 3].train_error.max() < 1e-8
+    assert means.train_error.is_monotonic_increasing
+    assert means.validation_error.is_monotonic_decreasing
+
+
+def _resume_config(tmp_path):
+    frame = linear_data(300, 2, 0.3, seed=3)
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    return load_config(write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y"},
+        "model": {"family": "tree", "capacity": {"values": [1, 2, 4]},
+                  "regularization": {"param": "ccp_alpha", "values": [0.0, 0.05]}},
+        "sizes": {"values": [20, 60, 200]}, "resampling": {"folds": 3, "seed": 2}}))
+
+
+def test_interrupted_run_resumes_to_the_uninterrupted_table(tmp_path):
+    # Common practice, no published source: resuming must not change numbers.
+    config = _resume_config(tmp_path)
+    api.run(config, out=tmp_path / "whole", jobs=1)
+    whole = api.open_run(tmp_path / "whole").cells()
+
+    class Stop(Exception):
+        pass
+
+    def stop_after_some(done, total):
+        if done >= 20:
+            raise Stop
+
+    with pytest.raises(Stop):
+        api.run(config, out=tmp_path / "part", jobs=1, progress=stop_after_some)
+    partial = api.open_run(tmp_path / "part").cells()
+    assert 0 < len(partial) < len(whole)
+    finished_before = without_times(partial)
+    api.run(config, out=tmp_path / "part", jobs=1)
+    resumed = api.open_run(tmp_path / "part").cells()
+    pd.testing.assert_frame_equal(without_times(resumed), without_times(whole))
+    # finished cells were not recomputed: their fit times are unchanged
+    kept = resumed.merge(partial, on=["capacity_index", "regularization_index", "size_index",
+                                      "repeat", "fold"], suffixes=("", "_before"))
+    assert len(kept) == len(finished_before)
+    assert (kept.fit_seconds == kept.fit_seconds_before).all()
+
+
+def test_parallel_and_sequential_runs_are_identical(tmp_path):
+    # Common practice, no published source: the worker count must not change numbers.
+    config = _resume_config(tmp_path)
+    api.run(config, out=tmp_path / "one", jobs=1)
+    api.run(config, out=tmp_path / "two", jobs=2)
+    one = without_times(api.open_run(tmp_path / "one").cells())
+    two = without_times(api.open_run(tmp_path / "two").cells())
+    pd.testing.assert_frame_equal(one, two)
+
+
+def test_changed_config_is_refused_in_the_same_folder(tmp_path):
+    config = _resume_config(tmp_path)
+    api.run(config, out=tmp_path / "run", jobs=1)
+    text = (tmp_path / "grid.toml").read_text().replace("seed = 2", "seed = 3")
+    (tmp_path / "grid.toml").write_text(text)
+    with pytest.raises(GridplanError, match="resampling"):
+        api.run(load_config(tmp_path / "grid.toml"), out=tmp_path / "run", jobs=1)
+
+
+def test_failing_cells_are_recorded_and_the_rest_completes(tmp_path):
+    # A k-nearest-neighbours model cannot use more neighbours than rows.
+    frame = linear_data(200, 2, 0.3, seed=4)
+    _, cells = run_frame(tmp_path, frame, {
+        "data": {"target": "y"},
+        "model": {"estimator": "sklearn.neighbors.KNeighborsRegressor",
+                  "capacity": {"param": "n_neighbors", "values": [1, 5, 30]}},
+        "sizes": {"values": [10, 100]}, "resampling": {"folds": 2}})
+    failed = cells[cells.status == "failed"]
+    assert set(zip(failed.capacity, failed.train_size)) == {("30", 10)}
+    assert failed.message.str.contains("ValueError").all()
+    assert failed.train_error.isna().all()
+    assert (cells[cells.status == "ok"].validation_error > 0).all()
