@@ -1,0 +1,111 @@
+"""The command line: check, run, export, demo; exit codes and one-sentence errors."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+from typer.testing import CliRunner
+
+from gridplan.cli import app
+from tests.helpers import linear_data, write_config
+
+runner = CliRunner()
+
+
+def _small_config(tmp_path, **model):
+    frame = linear_data(200, 2, 0.4, seed=6)
+    frame["site"] = np.random.default_rng(1).choice(["east", "west"], size=len(frame))
+    frame.to_parquet(tmp_path / "data.parquet")
+    return write_config(tmp_path, {
+        "data": {"path": "data.parquet", "target": "y"},
+        "model": model or {"family": "poly-ridge", "capacity": {"values": [1, 2]},
+                           "regularization": {"values": [0.1, 10.0]}},
+        "sizes": {"count": 3, "smallest": 20}, "resampling": {"folds": 3, "seed": 1}})
+
+
+def test_check_prints_the_grid(tmp_path):
+    config = _small_config(tmp_path)
+    result = runner.invoke(app, ["check", str(config), "--out", str(tmp_path / "r")])
+    assert result.exit_code == 0, result.output
+    assert "12 cells (4 settings x 3 sizes), 36 fits" in result.output
+    assert "1 categorical" in result.output
+    assert str(tmp_path / "r") in result.output
+
+
+def test_run_then_export_has_the_contract_columns(tmp_path):
+    config = _small_config(tmp_path)
+    result = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "--yes",
+                                 "-j", "1"])
+    assert result.exit_code == 0, result.output
+    assert "36 fits stored" in result.output
+    out = tmp_path / "cells.csv"
+    result = runner.invoke(app, ["export", str(tmp_path / "r"), "-o", str(out)])
+    assert result.exit_code == 0, result.output
+    cells = pd.read_csv(out)
+    for column in ["capacity", "regularization", "train_size", "repeat", "fold",
+                   "train_error", "validation_error", "fit_seconds", "status"]:
+        assert column in cells.columns
+    assert len(cells) == 36
+    assert sorted(cells.train_size.unique()) == [20, 52, 133]  # geometric: 20, sqrt(20 * 133), 133
+    # rerun resumes: nothing left to compute, same table
+    again = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "--yes", "-q"])
+    assert again.exit_code == 0
+    assert "36 fits stored" in again.output
+
+
+def test_feature_set_capacity_axis(tmp_path):
+    rng = np.random.default_rng(3)
+    frame = pd.DataFrame({"temp": rng.normal(size=300), "humidity": rng.normal(size=300),
+                          "route": rng.choice(["r1", "r2", "r3"], size=300)})
+    frame["y"] = (2 * frame.temp + frame.humidity + (frame.route == "r2") * 1.5
+                  + rng.normal(scale=0.3, size=300))
+    frame.to_csv(tmp_path / "d.csv", index=False)
+    config = write_config(tmp_path, {
+        "data": {"path": "d.csv", "target": "y"},
+        "model": {"family": "poly-ridge", "params": {"degree": 1},
+                  "capacity": {"features": [["temp"], ["temp", "humidity"],
+                                            ["temp", "humidity", "route"]]},
+                  "regularization": {"values": [0.01]}},
+        "sizes": {"values": [50, 200]}, "resampling": {"folds": 3}})
+    result = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "-q", "-j", "1"])
+    assert result.exit_code == 0, result.output
+    from gridplan.api import open_run
+    cells = open_run(tmp_path / "r").cells()
+    assert list(dict.fromkeys(cells.capacity)) == ["temp", "+humidity", "+route"]
+    val = cells[cells.train_size == 200].groupby("capacity_index").validation_error.mean()
+    # each added group carries real signal, so validation error falls (known data model)
+    assert val.is_monotonic_decreasing and val.iloc[2] < 0.2
+
+
+def test_bad_config_gives_one_sentence_and_exit_1(tmp_path):
+    config = _small_config(tmp_path)
+    config.write_text(config.read_text().replace("folds = 3", "fold = 3"))
+    result = runner.invoke(app, ["check", str(config)])
+    assert result.exit_code == 1
+    assert "unknown key 'fold' (did you mean 'folds'?)" in result.output
+    assert "Traceback" not in result.output
+
+
+def test_estimator_outside_sklearn_is_refused_without_opt_in(tmp_path):
+    config = _small_config(tmp_path, estimator="os.system",
+                           capacity={"param": "n", "values": [1]})
+    result = runner.invoke(app, ["run", str(config), "--yes"])
+    assert result.exit_code == 1
+    assert "outside scikit-learn" in result.output
+
+
+def test_export_of_a_folder_that_is_not_a_run(tmp_path):
+    result = runner.invoke(app, ["export", str(tmp_path), "-o", str(tmp_path / "x.csv")])
+    assert result.exit_code == 1
+    assert "not a gridplan run folder" in result.output
+
+
+def test_help_answers_without_heavy_imports():
+    # `gridplan --help` must not import scikit-learn, pandas or matplotlib.
+    code = ("import sys; from gridplan.cli import app; "
+            "print(any(m in sys.modules for m in ('sklearn', 'pandas', 'matplotlib')))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"
