@@ -8,8 +8,11 @@ and give the same numbers as the plain fits (see `gridplan.fastpaths`).
 
 from __future__ import annotations
 
+import signal
+import threading
 import time
 import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Callable, Iterator
 
@@ -53,12 +56,13 @@ class Workload:
     folds: tuple
     sizes: tuple[int, ...]
     metric: str
+    fit_time_limit: float | None = None
 
 
 def workload_of(spec: GridSpec) -> Workload:
     return Workload(X=spec.dataset.X, y=spec.dataset.y, labels=spec.dataset.labels,
                     plan=spec.plan, folds=spec.folds, sizes=spec.sizes,
-                    metric=spec.config.metric)
+                    metric=spec.config.metric, fit_time_limit=spec.config.fit_time_limit)
 
 
 def fast_path_kind(plan: ModelPlan, metric: str) -> str | None:
@@ -115,22 +119,60 @@ def _one_blas_thread():
     return _CONTROLLER.limit(limits=1)
 
 
+class FitTimeout(Exception):
+    """A fit ran past the config's fit_time_limit."""
+
+
+@contextmanager
+def _time_limit(seconds: float | None, n_fits: int) -> Iterator[None]:
+    """Raise FitTimeout after seconds x n_fits, where the platform allows it.
+
+    Uses SIGALRM, so it works in a process's main thread (local workers, a
+    sequential run); a fit stuck inside compiled code is stopped as soon as it
+    returns to Python. Elsewhere (threads of a dask worker) no limit applies.
+    """
+    usable = (seconds is not None and hasattr(signal, "setitimer")
+              and threading.current_thread() is threading.main_thread())
+    if not usable:
+        yield
+        return
+    limit = seconds * max(1, n_fits)
+
+    def on_alarm(signum, frame):
+        raise FitTimeout(f"fit exceeded the time limit of {seconds:g} s")
+
+    previous = signal.signal(signal.SIGALRM, on_alarm)
+    signal.setitimer(signal.ITIMER_REAL, limit)
+    try:
+        yield
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, previous)
+
+
+def run_tasks(tasks: tuple[Task, ...], work: Workload) -> list[FoldRow]:
+    """Run several tasks in one call (fewer round trips on a cluster)."""
+    return [row for task in tasks for row in run_task(task, work)]
+
+
 def run_task(task: Task, work: Workload) -> list[FoldRow]:
     """Compute one task's rows; a failure is recorded per row, never raised."""
+    from joblib import parallel_config
     fold = work.folds[task.fold_index]
     size = work.sizes[task.size_index]
-    with _one_blas_thread(), warnings.catch_warnings():
+    with _one_blas_thread(), warnings.catch_warnings(), parallel_config(backend="sequential"):
         warnings.simplefilter("ignore")
         started = time.perf_counter()
         try:
-            if task.kind == "ridge-path":
-                results = _ridge_path(task, work, fold, size)
-            elif task.kind == "tree-path":
-                results = _tree_path(task, work, fold, size)
-            else:
-                results = {(task.capacity_indices[0], task.regularization_indices[0]):
-                           _plain_fit(task, work, fold, size)}
-        except Exception as exc:  # one failing task never stops the run
+            with _time_limit(work.fit_time_limit, task.n_fits):
+                if task.kind == "ridge-path":
+                    results = _ridge_path(task, work, fold, size)
+                elif task.kind == "tree-path":
+                    results = _tree_path(task, work, fold, size)
+                else:
+                    results = {(task.capacity_indices[0], task.regularization_indices[0]):
+                               _plain_fit(task, work, fold, size)}
+        except Exception as exc:  # one failing task (or a timeout) never stops the run
             message = f"{type(exc).__name__}: {str(exc).strip().splitlines()[0] if str(exc).strip() else ''}"
             results = {(ci, ri): (None, None, "failed", "plain" if task.kind == "plain" else task.kind,
                                   message[:500])
@@ -214,20 +256,36 @@ def _tree_path(task: Task, work: Workload, fold, size: int) -> dict:
     return {(ci, ri): _cell(cells[i]) for i, ci in enumerate(task.capacity_indices)}
 
 
-def execute(tasks: list[Task], work: Workload, *, jobs: int = 1,
-            backend: str | None = None) -> Iterator[list[FoldRow]]:
-    """Yield each task's rows as it finishes (in any order)."""
+def chunked(tasks: list[Task], size: int) -> list[tuple[Task, ...]]:
+    """Group tasks into chunks of `size` (larger units of work for a cluster)."""
+    return [tuple(tasks[i:i + size]) for i in range(0, len(tasks), size)]
+
+
+def execute(tasks: list[Task], work: Workload, *, jobs: int = 1, backend: str | None = None,
+            backend_options: dict | None = None, chunk: int = 1) -> Iterator[list[FoldRow]]:
+    """Yield the rows of each task (or chunk of tasks) as it finishes, in any order.
+
+    Locally this uses joblib's loky backend with one BLAS thread per worker;
+    `backend="dask"` sends the same work to a dask cluster (see gridplan.cluster).
+    """
     if jobs == 1 and backend is None:
         for task in tasks:
             yield run_task(task, work)
         return
     from joblib import Parallel, delayed, parallel_config
-    with parallel_config(backend=backend or "loky", n_jobs=jobs, inner_max_num_threads=1):
+    options = dict(backend_options or {})
+    if backend in (None, "loky"):
+        options.setdefault("inner_max_num_threads", 1)
+    with parallel_config(backend=backend or "loky", n_jobs=jobs, **options):
         parallel = Parallel(return_as="generator_unordered", batch_size="auto")
-        yield from parallel(delayed(run_task)(task, work) for task in tasks)
+        if chunk > 1:
+            yield from parallel(delayed(run_tasks)(group, work) for group in chunked(tasks, chunk))
+        else:
+            yield from parallel(delayed(run_task)(task, work) for task in tasks)
 
 
 def run_grid(spec: GridSpec, store: Store, *, jobs: int = 1, backend: str | None = None,
+             backend_options: dict | None = None, chunk: int = 1,
              progress: ProgressCallback | None = None) -> int:
     """Run every unfinished task, writing rows to the store as they arrive.
 
@@ -245,7 +303,8 @@ def run_grid(spec: GridSpec, store: Store, *, jobs: int = 1, backend: str | None
     last_flush = time.monotonic()
     written = 0
     try:
-        for rows in execute(tasks, work, jobs=jobs, backend=backend):
+        for rows in execute(tasks, work, jobs=jobs, backend=backend,
+                            backend_options=backend_options, chunk=chunk):
             fresh = [r for r in rows if (r.capacity_index, r.regularization_index, r.size_index,
                                          r.repeat, r.fold) not in done]
             buffer.extend(fresh)
