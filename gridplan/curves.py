@@ -31,9 +31,13 @@ WIDE_BAND_RATIO = 1.0
 #: happen to agree cannot dominate the fit.
 SE_FLOOR_FRACTION = 0.1
 
-#: Family choice: families whose hold-out error is within this factor of the
-#: best one count as tied, and the one with fewest parameters wins.
+#: Family choice: a family's hold-out error counts as tied with the best one
+#: when it is within HOLDOUT_TIE_FACTOR times the best, or within
+#: HOLDOUT_TIE_SE standard errors of the held-out sizes' mean errors; among
+#: tied families the one with fewest parameters (then the earlier in
+#: DEFAULT_FAMILIES) wins.  A more flexible family must win clearly.
 HOLDOUT_TIE_FACTOR = 1.10
+HOLDOUT_TIE_SE = 2.0
 
 #: Fewest sizes for which the family is chosen by hold-out; below it pow3 is used.
 MIN_SIZES_FOR_CHOICE = 5
@@ -61,6 +65,7 @@ class Family:
     evaluate: Callable[[np.ndarray, np.ndarray], np.ndarray]
     invert: Callable[[np.ndarray, float], float]
     original: Callable[[np.ndarray, float], dict[str, float]]
+    jacobian: Callable[[np.ndarray, np.ndarray], np.ndarray] | None = None
 
     @property
     def n_params(self) -> int:
@@ -71,12 +76,24 @@ def _pow3(x, t):
     return t[0] + t[1] * np.power(x, -t[2])
 
 
+def _pow3_jacobian(x, t):
+    power = np.power(x, -t[2])
+    return np.column_stack([np.ones_like(x), power, -t[1] * power * np.log(x)])
+
+
 def _pow3_invert(t, target):
     return (t[1] / (target - t[0])) ** (1.0 / t[2]) if t[2] > 0 else math.inf
 
 
 def _pow4(x, t):
     return t[0] + np.power(t[1] * x + t[3], -t[2])
+
+
+def _pow4_jacobian(x, t):
+    base = t[1] * x + t[3]
+    power = np.power(base, -t[2])
+    slope = -t[2] * power / base
+    return np.column_stack([np.ones_like(x), slope * x, -power * np.log(base), slope])
 
 
 def _pow4_invert(t, target):
@@ -87,6 +104,11 @@ def _pow4_invert(t, target):
 
 def _exp3(x, t):
     return t[0] + t[1] * np.exp(-t[2] * x)
+
+
+def _exp3_jacobian(x, t):
+    decay = np.exp(-t[2] * x)
+    return np.column_stack([np.ones_like(x), decay, -t[1] * x * decay])
 
 
 def _exp3_invert(t, target):
@@ -137,17 +159,17 @@ FAMILIES: dict[str, Family] = {
     "pow3": Family(
         "pow3", "e(m) = a + b * m^(-c)", ("a", "b", "c"),
         (0.0, 0.0, 0.0), (_INF, _INF, 10.0), _pow3, _pow3_invert,
-        lambda t, s: {"a": t[0], "b": t[1] * s ** t[2], "c": t[2]},
+        lambda t, s: {"a": t[0], "b": t[1] * s ** t[2], "c": t[2]}, _pow3_jacobian,
     ),
     "exp3": Family(
         "exp3", "e(m) = a + b * exp(-c * m)", ("a", "b", "c"),
         (0.0, 0.0, 0.0), (_INF, _INF, 1e3), _exp3, _exp3_invert,
-        lambda t, s: {"a": t[0], "b": t[1], "c": t[2] / s},
+        lambda t, s: {"a": t[0], "b": t[1], "c": t[2] / s}, _exp3_jacobian,
     ),
     "pow4": Family(
         "pow4", "e(m) = a + (b * m + d)^(-c)", ("a", "b", "c", "d"),
         (0.0, 1e-12, 0.0, 0.0), (_INF, _INF, 10.0, _INF), _pow4, _pow4_invert,
-        lambda t, s: {"a": t[0], "b": t[1] / s, "c": t[2], "d": t[3]},
+        lambda t, s: {"a": t[0], "b": t[1] / s, "c": t[2], "d": t[3]}, _pow4_jacobian,
     ),
     "mmf4": Family(
         "mmf4", "e(m) = (a * b + c * m^d) / (b + m^d)", ("c", "A", "b", "d"),
@@ -213,12 +235,16 @@ def _fit_family(fam: Family, x, y, w, starts: Iterable[np.ndarray]) -> tuple[np.
     def residuals(theta):
         return (fam.evaluate(x, theta) - y) * w
 
+    def jacobian(theta):
+        return fam.jacobian(x, theta) * w[:, None]
+
     best_theta, best_cost = None, math.inf
     for start in starts:
         start = np.clip(np.nan_to_num(start, nan=1.0, posinf=1e6), lower,
                         np.where(np.isfinite(upper), upper, 1e12))
         try:
             result = least_squares(residuals, start, bounds=(lower, upper), method="trf",
+                                   jac=jacobian if fam.jacobian else "2-point",
                                    x_scale="jac", max_nfev=400 * len(start))
         except (ValueError, FloatingPointError):
             continue
@@ -467,7 +493,9 @@ def _choose_family(x, y, se, families: tuple[str, ...]) -> tuple[str, dict[str, 
         scores[name] = float(np.mean(np.abs(fam.evaluate(x[-held:], theta) - y[-held:])))
     scored = {k: v for k, v in scores.items() if v is not None}
     best = min(scored.values())
-    tied = [k for k, v in scored.items() if v <= HOLDOUT_TIE_FACTOR * best + _TINY]
+    noise = float(np.sqrt(np.mean(se[-held:] ** 2)))
+    margin = max((HOLDOUT_TIE_FACTOR - 1.0) * best, HOLDOUT_TIE_SE * noise)
+    tied = [k for k, v in scored.items() if v <= best + margin + _TINY]
     chosen = min(tied, key=lambda k: (FAMILIES[k].n_params, families.index(k)))
     return chosen, scores
 
@@ -539,3 +567,196 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
                     validation_mean=level, validation_se=spread, train_mean=train_mean,
                     boot_theta=np.array(boot), n_units=n_units, inflation=inflation,
                     holdout_errors=holdout, setting=setting)
+
+
+# --- a whole grid ----------------------------------------------------------------
+
+CELL_COLUMNS = ("capacity_index", "regularization_index", "capacity", "regularization",
+                "train_size", "repeat", "fold", "train_error", "validation_error", "status")
+
+
+class GridCurves(dict):
+    """Fitted curves keyed by (capacity_index, regularization_index).
+
+    `unfitted` lists the settings that could not be fitted, each with a reason.
+    """
+
+    def __init__(self, *args, unfitted: list[dict] | None = None, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.unfitted: list[dict] = list(unfitted or [])
+
+
+def _setting_matrices(rows: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Sizes and (size x unit) validation / training error matrices of one setting's usable rows."""
+    validation = rows.pivot_table(index="train_size", columns=["repeat", "fold"],
+                                  values="validation_error", aggfunc="mean", dropna=False)
+    training = rows.pivot_table(index="train_size", columns=["repeat", "fold"],
+                                values="train_error", aggfunc="mean", dropna=False)
+    training = training.reindex(index=validation.index, columns=validation.columns)
+    return (validation.index.to_numpy(dtype=float), validation.to_numpy(dtype=float),
+            training.to_numpy(dtype=float))
+
+
+def _fit_one(info: SettingInfo, rows: pd.DataFrame, families, n_boot: int,
+             seed: np.random.SeedSequence) -> CurveFit | dict:
+    """Fit one setting, or describe why it could not be fitted."""
+    try:
+        if rows.empty:
+            raise GridplanError("no rows with status 'ok'")
+        sizes, validation, training = _setting_matrices(rows)
+        return fit_setting(sizes, validation, training, families=families, n_boot=n_boot,
+                           seed=seed, setting=info)
+    except GridplanError as problem:
+        return {"capacity_index": info.capacity_index,
+                "regularization_index": info.regularization_index,
+                "capacity": info.capacity, "regularization": info.regularization,
+                "skipped_rows": info.skipped_rows, "reason": str(problem)}
+
+
+def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
+             n_boot: int = 200, seed: int = 0, n_jobs: int = 1) -> GridCurves:
+    """Fit a learning curve for every (capacity, regularisation) setting of a grid.
+
+    Only rows with status "ok" are used; the others are counted per setting.
+    Each setting's bootstrap is seeded from (seed, capacity_index,
+    regularization_index), so results do not depend on order or `n_jobs`.
+    """
+    missing = [c for c in CELL_COLUMNS if c not in cells.columns]
+    if missing:
+        raise GridplanError(f"The cells table lacks the column(s): {', '.join(missing)}.")
+    if cells.empty:
+        raise GridplanError("The cells table is empty, so there are no learning curves to fit.")
+    families = tuple(families)
+    jobs = []
+    for (cap, reg), rows in cells.groupby(["capacity_index", "regularization_index"], sort=True):
+        ok = rows["status"] == "ok"
+        info = SettingInfo(int(cap), int(reg), str(rows["capacity"].iloc[0]),
+                           str(rows["regularization"].iloc[0]), int((~ok).sum()))
+        jobs.append((info, rows[ok], families, n_boot,
+                     np.random.SeedSequence([int(seed), int(cap), int(reg)])))
+    if n_jobs == 1:
+        results = [_fit_one(*job) for job in jobs]
+    else:
+        from joblib import Parallel, delayed
+        results = Parallel(n_jobs=n_jobs)(delayed(_fit_one)(*job) for job in jobs)
+    grid = GridCurves()
+    for (info, *_), result in zip(jobs, results):
+        if isinstance(result, CurveFit):
+            grid[(info.capacity_index, info.regularization_index)] = result
+        else:
+            grid.unfitted.append(result)
+    return grid
+
+
+# --- summary ----------------------------------------------------------------------
+
+def _plain(value):
+    """Convert numpy scalars / non-finite floats into JSON-friendly Python values."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, (np.bool_, bool)):
+        return bool(value)
+    if isinstance(value, (np.integer, int)):
+        return int(value)
+    if isinstance(value, (np.floating, float)):
+        return float(value) if math.isfinite(value) else None
+    return value
+
+
+def _setting_summary(fit: CurveFit, target: float | None, confidence: float,
+                     current_size: float | None, max_size: float) -> dict:
+    info = fit.setting or SettingInfo(-1, -1, "", "")
+    largest = float(fit.sizes[-1])
+    reference = float(current_size) if current_size else largest
+    floor_low, floor_high = fit.asymptote_band(confidence)
+    row = {"capacity": info.capacity, "regularization": info.regularization,
+           "capacity_index": info.capacity_index,
+           "regularization_index": info.regularization_index,
+           "family": fit.family, "formula": FAMILIES[fit.family].formula,
+           "params": fit.params, "holdout_errors": fit.holdout_errors,
+           "asymptote": fit.asymptote, "asymptote_low": floor_low, "asymptote_high": floor_high,
+           "largest_size": int(largest), "error_at_largest": float(fit.validation_mean[-1]),
+           "reference_size": int(reference)}
+    for factor in (2, 4):
+        low, high = fit.band(factor * reference, confidence)
+        row[f"predicted_{factor}x"] = float(fit.predict(factor * reference))
+        row[f"predicted_{factor}x_low"], row[f"predicted_{factor}x_high"] = float(low), float(high)
+    row["band_too_wide"] = fit.band_too_wide(2 * reference, confidence)
+    if target is None:
+        row.update(samples_needed=None, samples_needed_low=None, samples_needed_high=None,
+                   samples_needed_point=None, reachable=None, reason="no target given")
+    else:
+        need = fit.samples_needed(target, confidence, max_size)
+        row.update(samples_needed=need.needed, samples_needed_low=need.low,
+                   samples_needed_high=need.high, samples_needed_point=need.point,
+                   reachable=need.reachable, reason=need.reason)
+    row["midpoint_check"] = fit.midpoint_check(confidence)
+    row["skipped_rows"] = info.skipped_rows
+    return row
+
+
+def curves_summary(fits: Mapping[tuple[int, int], CurveFit], *, target: float | None,
+                   confidence: float = 0.9, current_size: float | None = None,
+                   max_size: float = DEFAULT_MAX_SIZE) -> dict:
+    """A JSON-ready summary: one entry per setting with floor, forecasts and samples needed.
+
+    Forecasts are at 2x and 4x `current_size` (default: each setting's
+    largest measured size).
+    """
+    _check_confidence(confidence)
+    settings = [_setting_summary(fits[key], target, confidence, current_size, max_size)
+                for key in sorted(fits)]
+    return _plain({"target": target, "confidence": confidence,
+                   "wide_band_ratio": WIDE_BAND_RATIO, "settings": settings,
+                   "unfitted": list(getattr(fits, "unfitted", []))})
+
+
+def _number(value, digits: int = 4) -> str:
+    return "-" if value is None else f"{value:.{digits}g}"
+
+
+def _size(value) -> str:
+    return "-" if value is None else f"{int(value):,}"
+
+
+def render_summary(summary: dict) -> str:
+    """Plain-text table of a curves summary, one line per setting."""
+    conf = summary["confidence"]
+    headers = ["capacity", "regularization", "family", "noise floor [band]",
+               "error @ size", "2x forecast [band]", "samples needed [band]", "notes"]
+    lines = []
+    for s in summary["settings"]:
+        notes = []
+        if s["band_too_wide"]:
+            forecast = "band too wide"
+        else:
+            forecast = (f"{_number(s['predicted_2x'])} [{_number(s['predicted_2x_low'])}, "
+                        f"{_number(s['predicted_2x_high'])}]")
+        if s["reachable"]:
+            samples = (f"{_size(s['samples_needed'])} [{_size(s['samples_needed_low'])}, "
+                       f"{_size(s['samples_needed_high'])}]")
+        elif s["reachable"] is None:
+            samples = "-"
+        else:
+            samples = "not reachable"
+            notes.append(s["reason"])
+        check = s["midpoint_check"]
+        if check.get("disagree"):
+            notes.append("floor outside the training/validation bracket")
+        if s["skipped_rows"]:
+            notes.append(f"rows skipped: {s['skipped_rows']}")
+        lines.append([s["capacity"], s["regularization"], s["family"],
+                      f"{_number(s['asymptote'])} [{_number(s['asymptote_low'])}, "
+                      f"{_number(s['asymptote_high'])}]",
+                      f"{_number(s['error_at_largest'])} @ {_size(s['largest_size'])}",
+                      forecast, samples, "; ".join(notes)])
+    widths = [max(len(str(row[i])) for row in [headers] + lines) for i in range(len(headers))]
+    title = f"Learning curves: target {_number(summary['target'])}, bands at {conf:.0%} confidence"
+    out = [title, "  ".join(h.ljust(w) for h, w in zip(headers, widths)).rstrip(),
+           "  ".join("-" * w for w in widths)]
+    out += ["  ".join(str(c).ljust(w) for c, w in zip(row, widths)).rstrip() for row in lines]
+    for u in summary.get("unfitted", []):
+        out.append(f"{u['capacity']}  {u['regularization']}  not fitted: {u['reason']}")
+    return "\n".join(out)
