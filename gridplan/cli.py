@@ -75,6 +75,7 @@ def check(config: Path = typer.Argument(..., help="TOML config file."),
     from gridplan import api
     spec = api.check(config, allow_any_estimator=allow_any_estimator)
     typer.echo(_describe(spec, out or api.default_run_dir(spec.config)))
+    typer.echo(_estimate_line(spec, api.effective_jobs(spec.config, None))[1])
 
 
 @app.command()
@@ -94,6 +95,12 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
     run_dir = out or api.default_run_dir(spec.config)
     if not quiet:
         typer.echo(_describe(spec, run_dir))
+    seconds, line = _estimate_line(spec, api.effective_jobs(spec.config, jobs))
+    if not quiet:
+        typer.echo(line)
+    if seconds > CONFIRM_ABOVE_SECONDS and not yes and sys.stdin.isatty():
+        if not typer.confirm("This grid will run for a long time. Start it?", default=False):
+            _fail("not started.", code=1)
     with _progress_bar(spec, quiet) as progress:
         api.run(spec.config, out=run_dir, jobs=jobs, scheduler=scheduler,
                 allow_any_estimator=allow_any_estimator, progress=progress, spec=spec)
@@ -101,6 +108,25 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
     failed = int((cells["status"] != "ok").sum())
     typer.echo(f"done: {len(cells)} fits stored in {run_dir}"
                + (f"; {failed} failed (see `gridplan export`)" if failed else ""))
+
+
+CONFIRM_ABOVE_SECONDS = 30 * 60
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 90 * 60:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+def _estimate_line(spec, jobs: int) -> tuple[float, str]:
+    """Time one task at the largest size and scale it to the grid."""
+    from gridplan.runner import estimate_seconds
+    seconds, probe = estimate_seconds(spec, jobs)
+    return seconds, (f"{'estimate'.ljust(14)}  about {_duration(seconds)} with {jobs} worker"
+                     f"{'s' if jobs > 1 else ''} (one task at the largest size took {probe:.2f} s)")
 
 
 class _progress_bar:

@@ -192,6 +192,6 @@ def build_model(plan: ModelPlan, capacity_index: int, regularization_index: int,
         # parameter validation without fitting, where the estimator offers it
         final = model.steps[-1][1]
         validate = getattr(final, "_validate_params", None)
-        if callable(validate):
+        if callable(validate) and hasattr(final, "_parameter_constraints"):
             validate()
     return model

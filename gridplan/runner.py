@@ -276,6 +276,8 @@ def execute(tasks: list[Task], work: Workload, *, jobs: int = 1, backend: str | 
     options = dict(backend_options or {})
     if backend in (None, "loky"):
         options.setdefault("inner_max_num_threads", 1)
+    if backend == "dask":
+        options.setdefault("scatter", [work])   # one copy per worker, not one per task
     with parallel_config(backend=backend or "loky", n_jobs=jobs, **options):
         parallel = Parallel(return_as="generator_unordered", batch_size="auto")
         if chunk > 1:
@@ -317,3 +319,20 @@ def run_grid(spec: GridSpec, store: Store, *, jobs: int = 1, backend: str | None
     finally:
         written += store.write_rows(buffer)
     return written
+
+
+def estimate_seconds(spec: GridSpec, jobs: int) -> tuple[float, float]:
+    """Rough wall time of the whole grid from one timed task at the largest size.
+
+    Returns (estimate, probe seconds). Work is taken as proportional to the
+    training size, which holds roughly for the built-in families.
+    """
+    tasks = build_tasks(spec, set())
+    largest = len(spec.sizes) - 1
+    probe = max((t for t in tasks if t.size_index == largest and t.fold_index == 0),
+                key=lambda t: (max(t.capacity_indices), -min(t.regularization_indices)))
+    started = time.perf_counter()
+    run_task(probe, workload_of(spec))
+    probe_seconds = time.perf_counter() - started
+    scale = float(np.mean([spec.sizes[t.size_index] for t in tasks])) / spec.sizes[largest]
+    return probe_seconds * len(tasks) * scale / max(1, jobs), probe_seconds

@@ -1,0 +1,160 @@
+"""Faults: killed runs, Ctrl-C, hung fits, a second run on the same folder, a full disk."""
+
+from __future__ import annotations
+
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from gridplan import api
+from gridplan.api import run_lock
+from gridplan.config import load_config
+from gridplan.errors import GridplanError
+from gridplan.store import Store
+from tests.helpers import linear_data, without_times, write_config
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _slow_grid(tmp_path) -> Path:
+    """A plain-path grid of a few hundred quick fits (seconds in all)."""
+    linear_data(600, 3, 0.5, seed=9).to_csv(tmp_path / "data.csv", index=False)
+    return write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y"},
+        "model": {"family": "tree", "capacity": {"values": [1, 2, 3, 4, 5, 6, 8, 10]},
+                  "regularization": {"param": "ccp_alpha", "values": [0.0, 0.001, 0.01, 0.1]}},
+        "sizes": {"values": [30, 60, 120, 240, 480]},
+        "resampling": {"folds": 5, "repeats": 2, "seed": 5}})
+
+
+def _start_run(config: Path, out: Path) -> subprocess.Popen:
+    return subprocess.Popen(
+        [sys.executable, "-m", "gridplan", "run", str(config), "--out", str(out), "-j", "1",
+         "--yes", "-q"], cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+def _rows(out: Path) -> int:
+    path = out / "store.sqlite"
+    if not path.exists():
+        return 0
+    try:
+        with sqlite3.connect(path, timeout=5) as connection:
+            return connection.execute("SELECT COUNT(*) FROM folds").fetchone()[0]
+    except sqlite3.OperationalError:
+        return 0
+
+
+def _wait_for_rows(process: subprocess.Popen, out: Path, at_least: int) -> None:
+    deadline = time.monotonic() + 120
+    while _rows(out) < at_least:
+        assert process.poll() is None, process.stderr.read()
+        assert time.monotonic() < deadline, "the run wrote no rows"
+        time.sleep(0.05)
+
+
+def test_sigkill_then_rerun_equals_an_uninterrupted_run(tmp_path):
+    # Common practice, no published source: a killed run must lose nothing it committed.
+    config = _slow_grid(tmp_path)
+    process = _start_run(config, tmp_path / "killed")
+    _wait_for_rows(process, tmp_path / "killed", 50)
+    process.send_signal(signal.SIGKILL)
+    process.wait(timeout=30)
+    with Store.open_existing(tmp_path / "killed") as store:
+        assert store.integrity_ok()
+        partial = len(store.fold_rows())
+    assert 0 < partial < 8 * 4 * 5 * 10
+    api.run(load_config(config), out=tmp_path / "killed", jobs=1)
+    api.run(load_config(config), out=tmp_path / "whole", jobs=1)
+    resumed = api.open_run(tmp_path / "killed").cells()
+    whole = api.open_run(tmp_path / "whole").cells()
+    pd.testing.assert_frame_equal(without_times(resumed), without_times(whole))
+    keys = ["capacity_index", "regularization_index", "size_index", "repeat", "fold"]
+    assert not resumed.duplicated(keys).any() and len(resumed) == 8 * 4 * 5 * 10
+    with Store.open_existing(tmp_path / "killed") as store:
+        assert store.integrity_ok()
+
+
+def test_ctrl_c_stops_keeps_cells_and_says_how_to_resume(tmp_path):
+    config = _slow_grid(tmp_path)
+    process = _start_run(config, tmp_path / "run")
+    _wait_for_rows(process, tmp_path / "run", 20)
+    process.send_signal(signal.SIGINT)
+    _, stderr = process.communicate(timeout=30)
+    assert process.returncode == 130
+    assert "Run the same command again to resume" in stderr
+    assert "Traceback" not in stderr
+    assert _rows(tmp_path / "run") >= 20
+
+
+def test_hung_fit_is_stopped_by_the_time_limit(tmp_path):
+    linear_data(120, 2, 0.5, seed=1).to_csv(tmp_path / "data.csv", index=False)
+    config = write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y"},
+        "model": {"estimator": "tests.sleepy.SleepyRegressor",
+                  "capacity": {"param": "nap", "values": [0.0, 30.0]}},
+        "sizes": {"values": [30, 60]}, "resampling": {"folds": 2},
+        "run": {"fit_time_limit": 0.3}})
+    started = time.monotonic()
+    run_dir = api.run(load_config(config), out=tmp_path / "run", jobs=1, allow_any_estimator=True)
+    assert time.monotonic() - started < 25   # far below one 30 s nap: the hang was cut short
+    cells = api.open_run(run_dir).cells()
+    hung, quick = cells[cells.capacity == "30"], cells[cells.capacity == "0"]
+    assert len(hung) == 4 and len(quick) == 4
+    assert (hung.status == "failed").all()
+    assert hung.message.str.contains("time limit").all()
+    assert (quick.status == "ok").all()
+
+
+def test_second_run_on_the_same_folder_is_refused(tmp_path):
+    config = load_config(_slow_grid(tmp_path))
+    (tmp_path / "run").mkdir()
+    with run_lock(tmp_path / "run"):
+        with pytest.raises(GridplanError, match="another gridplan run is using"):
+            api.run(config, out=tmp_path / "run", jobs=1)
+
+
+def test_full_disk_gives_a_clear_error_and_keeps_committed_rows(tmp_path, monkeypatch):
+    config = load_config(_slow_grid(tmp_path))
+    calls = {"n": 0}
+    original = Store.write_rows
+
+    def fill_up_after_two_writes(self, rows):
+        calls["n"] += 1
+        if calls["n"] > 2:
+            raise sqlite3.OperationalError("database or disk is full")
+        return original(self, rows)
+
+    monkeypatch.setattr("gridplan.runner.FLUSH_ROWS", 10)
+    monkeypatch.setattr(Store, "write_rows", fill_up_after_two_writes)
+    with pytest.raises(sqlite3.OperationalError):
+        api.run(config, out=tmp_path / "run", jobs=1)
+    monkeypatch.undo()
+    with Store.open_existing(tmp_path / "run") as store:
+        assert store.integrity_ok()
+        kept = store.fold_rows()
+    assert len(kept) >= 10 and kept["status"].eq("ok").all()
+
+
+def test_store_write_error_becomes_one_sentence(tmp_path):
+    store = Store(tmp_path / "s.sqlite")
+    store.connection.execute("PRAGMA query_only = ON")
+    from gridplan.store import FoldRow
+    row = FoldRow(0, 0, 0, 0, 0, 10, 0.1, 0.2, 0.01, "ok", "plain")
+    with pytest.raises(GridplanError, match="cannot write to the store"):
+        store.write_rows([row])
+
+
+def test_unwritable_output_folder_is_a_clear_error(tmp_path):
+    config = load_config(_slow_grid(tmp_path))
+    blocker = tmp_path / "file"
+    blocker.write_text("not a folder")
+    with pytest.raises(GridplanError, match="cannot create run folder"):
+        api.run(config, out=blocker / "run", jobs=1)
