@@ -22,11 +22,18 @@ def _fail(message: str, code: int = 1) -> None:
     raise typer.Exit(code)
 
 
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    """Library warnings as one plain line, without file and line numbers."""
+    typer.echo(f"gridplan: warning: {message}", err=True)
+
+
 def friendly(command: Callable) -> Callable:
     """Turn GridplanError into one sentence and exit 1; Ctrl-C into a resume hint."""
     @functools.wraps(command)
     def wrapper(*args, **kwargs):
+        import warnings
         from gridplan.errors import GridplanError
+        warnings.showwarning = _show_warning
         try:
             return command(*args, **kwargs)
         except GridplanError as exc:

@@ -110,36 +110,46 @@ def plan_model(config: Config, dataset: Dataset, *, allow_any_import: bool = Fal
     return plan
 
 
+def _final_estimator(plan: ModelPlan) -> Any:
+    """The last pipeline step with default parameters (nothing from the config)."""
+    if plan.estimator_cls is not None:
+        return plan.estimator_cls()
+    if plan.family == "poly-logistic":
+        return LogisticRegression()
+    if plan.family == "poly-ridge":
+        return RidgeClassifier() if plan.task == "classification" else Ridge()
+    return DecisionTreeClassifier() if plan.task == "classification" else DecisionTreeRegressor()
+
+
 def _check_parameters(config: Config, plan: ModelPlan) -> None:
     """Every parameter the config sets must exist on the model; the task must fit it."""
     name = config.source.name
-    model = build_model(plan, 0, 0, check=False)
-    final = model.steps[-1][1]
+    final = _final_estimator(plan)
     if plan.estimator_cls is not None:
         if config.task == "regression" and is_classifier(final):
             raise GridplanError(f"{name}: {config.estimator} is a classifier but the task is regression.")
         if config.task == "classification" and is_regressor(final):
             raise GridplanError(f"{name}: {config.estimator} is a regressor but the task is classification.")
-    available = set(model.get_params(deep=True))
-    short = {k[len("fit__"):]: k for k in available
-             if k.startswith("fit__") and k.count("__") == 1}
+    available = set(final.get_params(deep=False))
     if plan.family in POLY_FAMILIES:
-        short.update({"degree": "poly__degree", "alpha": "fit__alpha"})
+        available |= {"degree", "alpha"}
     for label, param in (("capacity", plan.capacity_param if plan.feature_sets is None else None),
                          ("regularization", plan.regularization_param)):
-        if param is not None and param not in short:
+        if param is not None and param not in available:
             raise GridplanError(f"{name}: [model] {label}.param {param!r} is not a parameter of "
-                                f"{config.model_name}{_suggest(param, sorted(short))}.")
+                                f"{config.model_name}{_suggest(param, sorted(available))}.")
     for param in plan.params:
-        if param not in short:
+        if param not in available:
             raise GridplanError(f"{name}: [model] params sets {param!r}, which "
-                                f"{config.model_name} does not have{_suggest(param, sorted(short))}.")
+                                f"{config.model_name} does not have{_suggest(param, sorted(available))}.")
     try:
         for ci in range(len(plan.capacity_values)):
             for ri in range(len(plan.regularization_values)):
                 build_model(plan, ci, ri, check=True)
     except (TypeError, ValueError) as exc:
-        raise GridplanError(f"{name}: [model] values are not accepted by {config.model_name}: {exc}.") from None
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise GridplanError(f"{name}: [model] values are not accepted by {config.model_name}: "
+                            f"{first}") from None
 
 
 def make_encoder(plan: ModelPlan, capacity_index: int) -> ColumnTransformer:

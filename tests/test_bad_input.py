@@ -1,0 +1,173 @@
+"""Bad configs and bad data: one clear sentence naming the problem, exit code 1."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+from gridplan.cli import app
+from tests.helpers import linear_data, write_config
+
+runner = CliRunner()
+
+BASE = {
+    "data": {"path": "data.csv", "target": "y"},
+    "model": {"family": "poly-ridge", "capacity": {"values": [1, 2]},
+              "regularization": {"values": [0.1, 1.0]}},
+    "sizes": {"values": [20, 60]},
+    "resampling": {"folds": 3},
+    "goal": {"metric": "mse", "target": 0.3},
+    "costs": {"per_sample": 1.0},
+}
+
+
+def _with(change: dict) -> dict:
+    sections = {k: dict(v) for k, v in BASE.items()}
+    for key, value in change.items():
+        section, _, name = key.partition(".")
+        if value is None:
+            sections[section].pop(name, None)
+        else:
+            sections[section][name] = value
+    return sections
+
+
+def _check(tmp_path, sections=None, frame=None, text=None) -> str:
+    (frame if frame is not None else linear_data(120, 2, 0.5, seed=0)).to_csv(
+        tmp_path / "data.csv", index=False)
+    path = tmp_path / "grid.toml"
+    if text is not None:
+        path.write_text(text)
+    else:
+        write_config(tmp_path, sections or BASE)
+    result = runner.invoke(app, ["check", str(path)])
+    assert result.exit_code == 1, result.output
+    assert "Traceback" not in result.output
+    message = result.output.strip()
+    assert message.startswith("gridplan: ") and "\n" not in message, message
+    return message
+
+
+CONFIG_CASES = [
+    ({"resampling.fold": 3}, "unknown key 'fold' (did you mean 'folds'?)"),
+    ({"model.capacity": {"values": []}}, "[model] capacity.values is empty"),
+    ({"model.capacity": {"values": [2, 1]}}, "must be sorted ascending"),
+    ({"model.regularization": {"values": [1.0, 1.0]}}, "duplicated values"),
+    ({"sizes.values": [0, 10]}, "positive whole numbers, got 0"),
+    ({"sizes.values": [-5, 10]}, "positive whole numbers, got -5"),
+    ({"sizes.values": [20, 500]}, "asks for 500 training rows, but a training fold holds only 80"),
+    ({"resampling.folds": 1}, "[resampling] folds must be at least 2, got 1"),
+    ({"resampling.folds": "five"}, "[resampling] folds must be a whole number, got 'five'"),
+    ({"goal.target": 0.0}, "[goal] target must be a positive error"),
+    ({"goal.target": -1.0}, "[goal] target must be a positive error"),
+    ({"costs.per_sample": -2.0}, "[costs] per_sample must not be negative"),
+    ({"goal.metric": "error_rate"}, "'error_rate' does not fit a regression task"),
+    ({"goal.metric": "msqe"}, "'msqe' does not fit a regression task"),
+    ({"model.capacity": {"param": "depth", "values": [1, 2]}},
+     "'depth' is not a parameter of the poly-ridge family; it has alpha, degree"),
+    ({"model.family": None, "model.estimator": "sklearn.ensemble.RandomForestRegressor",
+      "model.capacity": {"param": "max_dept", "values": [2, 4]}, "model.regularization": None},
+     "'max_dept' is not a parameter of sklearn.ensemble.RandomForestRegressor (did you mean 'max_depth'?)"),
+    ({"model.family": None, "model.estimator": "sklearn.ensemble.RandomForestRegresor",
+      "model.capacity": {"param": "max_depth", "values": [2, 4]}, "model.regularization": None}, "no estimator 'RandomForestRegresor' (did you mean 'RandomForestRegressor'?)"),
+    ({"model.family": None, "model.estimator": "subprocess.Popen",
+      "model.capacity": {"param": "bufsize", "values": [1, 2]}, "model.regularization": None},
+     "outside scikit-learn"),
+    ({"model.family": "forest"}, "[model] family must be one of poly-ridge, tree, got 'forest'"),
+    ({"data.task": "regresion"}, "did you mean 'regression'?"),
+    ({"data.path": "nowhere.csv"}, "data file"),
+    ({"data.target": "price"}, "has no target column 'price'"),
+]
+
+
+@pytest.mark.parametrize("change, expected", CONFIG_CASES)
+def test_bad_config(tmp_path, change, expected):
+    assert expected in _check(tmp_path, _with(change))
+
+
+def test_missing_config_file(tmp_path):
+    result = runner.invoke(app, ["check", str(tmp_path / "absent.toml")])
+    assert result.exit_code == 1
+    assert "config file" in result.output and "does not exist" in result.output
+
+
+def test_config_that_is_not_toml_names_line_and_column(tmp_path):
+    message = _check(tmp_path, text="[data]\npath = data.csv\n")
+    assert "is not valid TOML" in message and "line 2" in message and "column" in message
+
+
+def test_bad_data_cases(tmp_path):
+    base = linear_data(120, 2, 0.5, seed=0)
+    cases = []
+    missing = base.copy()
+    missing.loc[[3, 7, 9], "x0"] = np.nan
+    missing.loc[[5], "x1"] = np.nan
+    cases.append((missing, _with({}), "missing feature values in x0 (3), x1 (1)"))
+    no_target = base.copy()
+    no_target["y"] = np.nan
+    cases.append((no_target, _with({}), "target column 'y' is entirely missing"))
+    text_target = base.copy()
+    text_target["y"] = ["high", "low"] * 60
+    cases.append((text_target, _with({}), "is not numeric, but the task is regression"))
+    one_class = base.copy()
+    one_class["y"] = "same"
+    cases.append((one_class, _with({"data.task": "classification", "goal.metric": "error_rate"}),
+                  "has a single class"))
+    rare = base.copy()
+    rare["y"] = ["a"] * 118 + ["b"] * 2
+    cases.append((rare, _with({"data.task": "classification", "goal.metric": "error_rate"}),
+                  "class 'b' of 'y' has only 2 rows, fewer than the 3 folds"))
+    tiny = base.head(5)
+    cases.append((tiny, _with({}), "too few for 3 folds"))
+    for frame, sections, expected in cases:
+        assert expected in _check(tmp_path, sections, frame), expected
+
+
+def test_empty_and_headless_files(tmp_path):
+    write_config(tmp_path, BASE)
+    (tmp_path / "data.csv").write_text("")
+    result = runner.invoke(app, ["check", str(tmp_path / "grid.toml")])
+    assert result.exit_code == 1 and "is empty" in result.output
+    (tmp_path / "data.csv").write_text("x0,x1,y\n")
+    result = runner.invoke(app, ["check", str(tmp_path / "grid.toml")])
+    assert result.exit_code == 1 and "has a header but no rows" in result.output
+
+
+def test_duplicate_column_names(tmp_path):
+    write_config(tmp_path, BASE)
+    (tmp_path / "data.csv").write_text("x0,x0,y\n1,2,3\n")
+    result = runner.invoke(app, ["check", str(tmp_path / "grid.toml")])
+    assert result.exit_code == 1 and "duplicate column names: x0" in result.output
+
+
+def test_unreadable_parquet(tmp_path):
+    sections = _with({"data.path": "data.parquet"})
+    write_config(tmp_path, sections)
+    (tmp_path / "data.parquet").write_bytes(b"this is not parquet at all")
+    result = runner.invoke(app, ["check", str(tmp_path / "grid.toml")])
+    assert result.exit_code == 1 and "data.parquet cannot be read" in result.output
+
+
+def test_constant_feature_is_a_warning_not_an_error(tmp_path):
+    frame = linear_data(120, 2, 0.5, seed=0)
+    frame["flat"] = 4.0
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    write_config(tmp_path, BASE)
+    result = runner.invoke(app, ["check", str(tmp_path / "grid.toml")])
+    assert result.exit_code == 0, result.output
+    assert "warning: data.csv: column 'flat' is constant" in result.output
+
+
+def test_missing_values_can_be_imputed_on_request(tmp_path):
+    frame = linear_data(120, 2, 0.5, seed=0)
+    frame.loc[[3, 7], "x0"] = np.nan
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    write_config(tmp_path, _with({"data.missing": "impute"}))
+    result = runner.invoke(app, ["run", str(tmp_path / "grid.toml"), "--out",
+                                 str(tmp_path / "r"), "-q", "-j", "1", "--yes"])
+    assert result.exit_code == 0, result.output
+    from gridplan.api import open_run
+    cells = open_run(tmp_path / "r").cells()
+    assert (cells.status == "ok").all() and cells.validation_error.notna().all()
