@@ -15,7 +15,7 @@ from typing import Iterator
 
 import pandas as pd
 
-from gridplan.config import Config, load_config, parse_config
+from gridplan.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
 from gridplan.errors import GridplanError
 from gridplan.spec import GridSpec, identity_difference, resolve
 from gridplan.store import CONFIG_COPY, STORE_NAME, Store
@@ -195,3 +195,29 @@ def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> 
     if not isinstance(config, Config):
         config = load_config(config)
     return resolve(config, allow_any_import=allow_any_estimator)
+
+
+def fit_curves(run_dir: str | Path, *, n_boot: int = 200, seed: int = 0):
+    """Fit a learning curve per setting of a run (see gridplan.curves.fit_grid)."""
+    from gridplan.curves import fit_grid
+    cells = open_run(run_dir).cells()
+    if cells.empty:
+        raise GridplanError(f"{run_dir} holds no finished fits yet; run the grid first.")
+    return fit_grid(cells, n_boot=n_boot, seed=seed)
+
+
+def curves_report(run_dir: str | Path, *, target: float | None = None,
+                  confidence: float | None = None, n_boot: int = 200, seed: int = 0) -> dict:
+    """Per-setting curve summary (family, noise floor, forecasts, samples needed)."""
+    from gridplan.curves import curves_summary
+    run = open_run(run_dir)
+    if target is None and run.config is not None:
+        target = run.config.target_error
+    if confidence is None:
+        confidence = run.config.confidence if run.config is not None else 0.9
+    if target is not None and target <= 0:
+        raise GridplanError(f"--target must be a positive error, got {target:g}.")
+    fits = fit_curves(run_dir, n_boot=n_boot, seed=seed)
+    summary = curves_summary(fits, target=target, confidence=confidence)
+    summary["metric"] = run.meta.get("metric")
+    return summary

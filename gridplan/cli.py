@@ -204,6 +204,68 @@ def demo(out: Path = typer.Option(Path("outputs/demo"), "--out", help="Folder fo
     typer.echo(f"run folder: {out / 'run'}")
 
 
+@app.command()
+@friendly
+def curves(run_dir: Path = typer.Argument(..., help="Run folder."),
+           target: Optional[float] = typer.Option(None, "--target", help="Target error (default: the config's)."),
+           confidence: Optional[float] = typer.Option(None, "--confidence", help="Band confidence (default: the config's)."),
+           as_json: bool = typer.Option(False, "--json", help="Print JSON instead of a table."),
+           plot: bool = typer.Option(False, "--plot", help="Also draw the curves to a PNG/SVG."),
+           output: Optional[Path] = typer.Option(None, "-o", "--output", help="Plot file (with --plot)."),
+           boot: int = typer.Option(200, "--boot", help="Bootstrap resamples per curve.")):
+    """Fit, extrapolate and summarise each setting's learning curve."""
+    import json
+    from gridplan import api
+    from gridplan.curves import render_summary
+    summary = api.curves_report(run_dir, target=target, confidence=confidence, n_boot=boot)
+    if as_json:
+        typer.echo(json.dumps(summary, indent=2))
+    else:
+        typer.echo(render_summary(summary))
+    if plot:
+        path = _plot_curves(run_dir, summary, output, boot)
+        if not as_json:
+            typer.echo(f"curves drawn to {path}")
+
+
+def _plot_curves(run_dir: Path, summary: dict, output: Optional[Path], boot: int) -> Path:
+    from gridplan import api, views
+    run = api.open_run(run_dir)
+    fits = api.fit_curves(run_dir, n_boot=boot)
+    figure = views.small_multiples_figure(run, fits, target=summary.get("target"))
+    path = output or (Path(run_dir) / "curves.png")
+    views.save_figure(figure, path)
+    return path
+
+
+@app.command()
+@friendly
+def backtest(config: Path = typer.Argument(..., help="TOML config file."),
+             fraction: float = typer.Option(0.25, "--fraction", help="Share of the training fold the curves may see."),
+             out: Optional[Path] = typer.Option(None, "--out", help="Run folder (default outputs/<name>-backtest)."),
+             jobs: Optional[int] = typer.Option(None, "--jobs", "-j"),
+             as_json: bool = typer.Option(False, "--json", help="Print JSON instead of a table."),
+             boot: int = typer.Option(200, "--boot", help="Bootstrap resamples per curve."),
+             allow_any_estimator: bool = typer.Option(False, "--allow-any-estimator")):
+    """Forecast the full-size error from a fraction of the data and compare with the truth."""
+    import json
+    from gridplan import api
+    from gridplan.backtest import backtest as run_backtest, render_backtest
+    cfg = api.load_config(config)
+    quiet = as_json or not sys.stderr.isatty()
+    result = run_backtest(cfg, fraction=fraction, out=out, jobs=jobs, n_boot=boot,
+                          allow_any_estimator=allow_any_estimator,
+                          progress=None if quiet else _stderr_progress())
+    typer.echo(json.dumps(result, indent=2) if as_json else render_backtest(result))
+
+
+def _stderr_progress():
+    """A minimal progress line on stderr for commands without a spec at hand."""
+    def update(done: int, total: int) -> None:
+        typer.echo(f"\r  {done}/{total} fits", err=True, nl=done >= total)
+    return update
+
+
 def _demo_summary(cells, noise_floor: float) -> str:
     ok = cells[cells["status"] == "ok"]
     largest = ok["train_size"].max()

@@ -1,0 +1,106 @@
+"""Backtest: forecast the full-size validation error from a fraction of the data.
+
+The grid is run at training sizes up to `fraction` of the full training fold
+plus the full size itself. Curves are fitted on the small sizes only, and the
+forecast at the full size is compared with what was measured there. This tells
+a user how far to trust forecasts on their own data.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from pathlib import Path
+
+import numpy as np
+
+from gridplan import api
+from gridplan.config import Config
+from gridplan.errors import GridplanError
+from gridplan.spec import GridSpec, resolve
+from gridplan.splits import size_ladder, smallest_training_fold
+
+MIN_CURVE_SIZES = 3
+
+
+def backtest_spec(spec: GridSpec, fraction: float) -> GridSpec:
+    """The config's grid with a size ladder up to fraction x full, plus the full size."""
+    if not 0 < fraction < 1:
+        raise GridplanError(f"--fraction must lie strictly between 0 and 1, got {fraction:g}.")
+    full = smallest_training_fold(list(spec.folds))
+    limit = int(np.floor(fraction * full))
+    c = spec.config
+    smallest = c.smallest_size if c.smallest_size is not None else spec.sizes[0]
+    if limit < smallest or limit < MIN_CURVE_SIZES:
+        raise GridplanError(f"--fraction {fraction:g} leaves {limit} training rows, fewer than the "
+                            f"smallest size {smallest}; use a larger fraction.")
+    if c.size_values is not None:
+        small = tuple(v for v in c.size_values if v <= limit)
+    else:
+        small = size_ladder(limit, values=None, count=max(c.size_count, MIN_CURVE_SIZES),
+                            smallest=smallest)
+    if len(small) < MIN_CURVE_SIZES:
+        raise GridplanError(f"--fraction {fraction:g} leaves only {len(small)} training sizes "
+                            f"(need {MIN_CURVE_SIZES}) to fit curves on; use a larger fraction "
+                            f"or more sizes.")
+    return dataclasses.replace(spec, sizes=tuple(sorted(set(small) | {full})))
+
+
+def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None = None,
+             jobs: int | None = None, n_boot: int = 200, seed: int = 0,
+             progress=None, allow_any_estimator: bool = False) -> dict:
+    """Run the backtest grid (resumably) and compare forecasts with measurements."""
+    from gridplan.curves import fit_grid
+    spec = backtest_spec(resolve(config, allow_any_import=allow_any_estimator), fraction)
+    run_dir = Path(out) if out is not None else api.default_run_dir(config).with_name(
+        f"{config.name}-backtest")
+    api.run(config, out=run_dir, jobs=jobs, spec=spec, progress=progress)
+    cells = api.open_run(run_dir).cells()
+    full = spec.sizes[-1]
+    ok = cells[cells.status == "ok"]
+    fits = fit_grid(ok[ok.train_size < full], n_boot=n_boot, seed=seed)
+    measured = ok[ok.train_size == full].groupby(
+        ["capacity_index", "regularization_index"]).validation_error.mean()
+    rows = []
+    for key, fit in sorted(fits.items()):
+        if key not in measured.index:
+            continue
+        low, high = fit.band(float(full), config.confidence)
+        predicted = float(fit.predict(float(full)))
+        truth = float(measured.loc[key])
+        rows.append({
+            "capacity": fit.setting.capacity, "regularization": fit.setting.regularization,
+            "capacity_index": key[0], "regularization_index": key[1],
+            "family": fit.family, "largest_fitted_size": int(fit.sizes[-1]),
+            "full_size": int(full), "predicted": predicted, "low": float(low),
+            "high": float(high), "measured": truth,
+            "abs_error": abs(predicted - truth),
+            "rel_error": abs(predicted - truth) / truth if truth > 0 else None,
+            "inside_band": bool(low <= truth <= high)})
+    if not rows:
+        raise GridplanError("no setting had enough finished fits for a backtest.")
+    rel = [r["rel_error"] for r in rows if r["rel_error"] is not None]
+    return {"run_dir": str(run_dir), "fraction": fraction, "confidence": config.confidence,
+            "metric": config.metric, "fitted_sizes": [int(s) for s in spec.sizes[:-1]],
+            "full_size": int(full), "rows": rows,
+            "median_abs_rel_error": float(np.median(rel)) if rel else None,
+            "coverage": float(np.mean([r["inside_band"] for r in rows])),
+            "unfitted": list(fits.unfitted)}
+
+
+def render_backtest(result: dict) -> str:
+    """Plain-text table of a backtest."""
+    lines = [f"backtest: curves fitted on sizes {', '.join(map(str, result['fitted_sizes']))}; "
+             f"forecast at {result['full_size']} rows vs measured ({result['metric']})",
+             f"{'capacity':>10} {'regularization':>14} {'family':>6} {'predicted':>10} "
+             f"{'band':>21} {'measured':>10} {'rel err':>8}  in band"]
+    for r in result["rows"]:
+        band = f"[{r['low']:.4g}, {r['high']:.4g}]"
+        rel = "-" if r["rel_error"] is None else f"{r['rel_error']:.1%}"
+        lines.append(f"{r['capacity']:>10} {r['regularization']:>14} {r['family']:>6} "
+                     f"{r['predicted']:>10.4g} {band:>21} {r['measured']:>10.4g} {rel:>8}  "
+                     f"{'yes' if r['inside_band'] else 'no'}")
+    median = result["median_abs_rel_error"]
+    lines.append(f"median |relative error| {'-' if median is None else f'{median:.1%}'}; "
+                 f"measured value inside the {result['confidence']:.0%} band for "
+                 f"{result['coverage']:.0%} of {len(result['rows'])} settings")
+    return "\n".join(lines)
