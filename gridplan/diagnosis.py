@@ -1,0 +1,316 @@
+"""Bias/variance diagnosis of each setting from the measured cells and its fitted curve.
+
+For a setting at its largest measured size m the diagnosis reports the mean
+training error, the mean validation error, their gap, the drop of the
+validation error per doubling of data between the last two measured sizes,
+the setting's fitted asymptote and the grid's noise-floor estimate, and a
+verdict.  Significance of the gap and of the drop uses the corrected
+resampled t-test of Nadeau & Bengio (2003), which widens the variance of
+cross-validated differences by 1/J + n_test/n_train (J = repeats x folds)
+because the training sets of the folds overlap.
+
+Verdict rules (thresholds in `Thresholds`, all relative to the target T and
+the noise floor F):
+
+1. fine: validation error <= T.
+2. noise-floor: validation error - F <= floor_margin x F (already within a
+   small fraction of the best any setting can reach).
+3. Otherwise the excess E_val - T splits exactly into a bias share
+   (E_train - T, the training error's own excess; 0 when E_train <= T) and a
+   variance share (the gap E_val - E_train, or the whole excess when E_train
+   <= T).  Bias is present when its share of the excess is at least
+   min_share; variance when its share is at least min_share and the gap is
+   significant at level alpha.  Both present: both.  Neither: the larger
+   share decides.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from gridplan.curves import CurveFit
+from gridplan.errors import GridplanError
+
+VERDICTS = ("high-bias", "high-variance", "both", "noise-floor", "fine")
+
+
+@dataclass(frozen=True)
+class Thresholds:
+    """The documented, configurable thresholds behind every verdict."""
+
+    #: near the noise floor when validation error - floor <= floor_margin x floor
+    floor_margin: float = 0.05
+    #: a cause (bias or variance) counts when it explains at least this share of the excess
+    min_share: float = 0.25
+    #: significance level for the gap (one-sided corrected resampled t-test)
+    alpha: float = 0.05
+    #: the curve counts as flat when it drops less than flat_fraction x target per doubling
+    flat_fraction: float = 0.02
+
+    def __post_init__(self) -> None:
+        for name in ("floor_margin", "min_share", "flat_fraction"):
+            value = getattr(self, name)
+            if not (math.isfinite(value) and value >= 0):
+                raise GridplanError(f"threshold {name} must be a non-negative number, got {value!r}.")
+        if not 0 < self.alpha < 1:
+            raise GridplanError(f"threshold alpha must lie strictly between 0 and 1, got {self.alpha!r}.")
+        if self.min_share > 1:
+            raise GridplanError(f"threshold min_share must be at most 1, got {self.min_share!r}.")
+
+
+# --- corrected resampled t-test ---------------------------------------------------
+
+def corrected_variance_factor(n_units: int, n_train: float, n_test: float) -> float:
+    """Nadeau & Bengio's factor 1/J + n_test/n_train for J resampled train/test splits."""
+    if n_units < 1 or n_train <= 0 or n_test <= 0:
+        raise GridplanError(f"the corrected t-test needs J >= 1 and positive set sizes, got "
+                            f"J={n_units}, n_train={n_train}, n_test={n_test}.")
+    return 1.0 / n_units + n_test / n_train
+
+
+@dataclass(frozen=True)
+class CorrectedTest:
+    """Mean of per-split differences with its corrected interval and one-sided p-value (mean > 0)."""
+
+    mean: float
+    standard_error: float
+    factor: float
+    dof: int
+    t: float
+    p_value: float
+    low: float
+    high: float
+    confidence: float
+
+    def significant(self, alpha: float) -> bool:
+        return self.p_value < alpha
+
+
+def corrected_t_test(differences, n_train: float, n_test: float,
+                     confidence: float = 0.9) -> CorrectedTest | None:
+    """Corrected resampled t-test on per-split differences (None with fewer than two splits)."""
+    d = np.asarray(differences, dtype=float)
+    d = d[np.isfinite(d)]
+    if d.size < 2:
+        return None
+    factor = corrected_variance_factor(d.size, n_train, n_test)
+    mean = float(d.mean())
+    se = math.sqrt(factor * float(d.var(ddof=1)))
+    dof = d.size - 1
+    if se > 0:
+        t = mean / se
+        p = float(stats.t.sf(t, dof))
+    else:
+        t = math.copysign(math.inf, mean) if mean else 0.0
+        p = 0.0 if mean > 0 else 1.0
+    half = float(stats.t.ppf(0.5 + confidence / 2, dof)) * se
+    return CorrectedTest(mean, se, factor, dof, float(t), p, mean - half, mean + half, confidence)
+
+
+# --- per-setting diagnosis ----------------------------------------------------------
+
+@dataclass
+class SettingDiagnosis:
+    """The numbers behind one setting's verdict, at its largest measured size."""
+
+    capacity_index: int
+    regularization_index: int
+    capacity: str
+    regularization: str
+    size: int
+    train_error: float
+    validation_error: float
+    gap: float
+    gap_test: CorrectedTest | None
+    previous_size: int | None
+    drop_per_doubling: CorrectedTest | None
+    curve_drop_next_doubling: float | None
+    setting_asymptote: float | None
+    setting_asymptote_band: tuple[float, float] | None
+    noise_floor: float | None
+    target: float
+    bias_share: float
+    variance_share: float
+    removable_by_data: float | None
+    removable_band: tuple[float, float] | None
+    not_removable: float | None
+    not_removable_band: tuple[float, float] | None
+    flat: bool | None
+    verdict: str
+    reason: str
+    failed_rows: int = 0
+    units: int = 0
+
+    def as_dict(self) -> dict:
+        return _plain(asdict(self))
+
+
+def _plain(value):
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return float(value) if math.isfinite(value) else None
+    return value
+
+
+def _unit_errors(rows: pd.DataFrame, column: str) -> pd.Series:
+    """Per-(repeat, fold) errors of one cell, indexed by (repeat, fold)."""
+    return rows.set_index(["repeat", "fold"])[column].astype(float)
+
+
+def split_excess(validation_error: float, target: float, fit: CurveFit | None,
+                 confidence: float) -> dict:
+    """Excess over target = part more data removes (E_val - asymptote) + part it cannot (asymptote - T)."""
+    if fit is None:
+        return {"removable_by_data": None, "removable_band": None,
+                "not_removable": None, "not_removable_band": None}
+    low, high = fit.asymptote_band(confidence)
+    return {"removable_by_data": validation_error - fit.asymptote,
+            "removable_band": (validation_error - high, validation_error - low),
+            "not_removable": fit.asymptote - target,
+            "not_removable_band": (low - target, high - target)}
+
+
+def verdict_for(train_error: float, validation_error: float, target: float,
+                noise_floor: float | None, gap_test: CorrectedTest | None,
+                thresholds: Thresholds) -> tuple[str, float, float, str]:
+    """(verdict, bias share, variance share, one-sentence reason with the numbers)."""
+    excess = validation_error - target
+    gap = validation_error - train_error
+    bias_part = max(0.0, train_error - target)
+    variance_part = excess - bias_part if excess > 0 else 0.0
+    bias_share = bias_part / excess if excess > 0 else 0.0
+    variance_share = variance_part / excess if excess > 0 else 0.0
+    numbers = (f"validation {validation_error:.4g}, training {train_error:.4g}, gap {gap:.4g}, "
+               f"target {target:.4g}")
+    if excess <= 0:
+        return "fine", 0.0, 0.0, f"validation error meets the target ({numbers})"
+    if noise_floor is not None and validation_error - noise_floor <= thresholds.floor_margin * noise_floor:
+        return ("noise-floor", bias_share, variance_share,
+                f"validation error is within {thresholds.floor_margin:.0%} of the noise floor "
+                f"{noise_floor:.4g} ({numbers})")
+    significant = gap_test is not None and gap_test.significant(thresholds.alpha)
+    gap_words = ("gap significant" if significant else "gap not significant") + (
+        f", p={gap_test.p_value:.2g}" if gap_test is not None else ", too few folds to test")
+    bias = bias_share >= thresholds.min_share
+    variance = variance_share >= thresholds.min_share and significant
+    shares = (f"training error's excess is {bias_share:.0%} and the gap {variance_share:.0%} "
+              f"of the excess {excess:.4g}; {gap_words}")
+    if bias and variance:
+        verdict = "both"
+    elif bias or variance:
+        verdict = "high-bias" if bias else "high-variance"
+    else:
+        verdict = "high-bias" if bias_share >= variance_share else "high-variance"
+        shares += f"; neither reaches {thresholds.min_share:.0%} with significance, the larger decides"
+    return verdict, bias_share, variance_share, f"{shares} ({numbers})"
+
+
+def diagnose_setting(rows: pd.DataFrame, fit: CurveFit | None, *, target: float,
+                     noise_floor: float | None, n_test: float, confidence: float,
+                     thresholds: Thresholds, size: int | None = None) -> SettingDiagnosis:
+    """Diagnose one setting from its cells (all statuses) at `size` (default: its largest ok size)."""
+    ok = rows[rows["status"] == "ok"]
+    if ok.empty:
+        raise GridplanError("a setting has no successful cells to diagnose.")
+    sizes = sorted(int(s) for s in ok["train_size"].unique())
+    m = sizes[-1] if size is None else int(size)
+    if m not in sizes:
+        raise GridplanError(f"training size {m} has no successful cells for this setting.")
+    here = ok[ok["train_size"] == m]
+    train = _unit_errors(here, "train_error")
+    valid = _unit_errors(here, "validation_error")
+    train_error, validation_error = float(train.mean()), float(valid.mean())
+    gap_test = corrected_t_test((valid - train).to_numpy(), m, n_test, confidence)
+
+    previous = max((s for s in sizes if s < m), default=None)
+    drop = None
+    if previous is not None:
+        before = _unit_errors(ok[ok["train_size"] == previous], "validation_error")
+        paired = (before - valid).dropna() / math.log2(m / previous)
+        drop = corrected_t_test(paired.to_numpy(), m, n_test, confidence)
+    curve_drop = float(fit.predict(m) - fit.predict(2 * m)) if fit is not None else None
+    flat = None
+    if drop is not None:
+        flat = abs(drop.mean) < thresholds.flat_fraction * target
+
+    verdict, bias_share, variance_share, reason = verdict_for(
+        train_error, validation_error, target, noise_floor, gap_test, thresholds)
+    first = rows.iloc[0]
+    return SettingDiagnosis(
+        capacity_index=int(first["capacity_index"]),
+        regularization_index=int(first["regularization_index"]),
+        capacity=str(first["capacity"]), regularization=str(first["regularization"]),
+        size=m, train_error=train_error, validation_error=validation_error,
+        gap=validation_error - train_error, gap_test=gap_test, previous_size=previous,
+        drop_per_doubling=drop, curve_drop_next_doubling=curve_drop,
+        setting_asymptote=fit.asymptote if fit is not None else None,
+        setting_asymptote_band=fit.asymptote_band(confidence) if fit is not None else None,
+        noise_floor=noise_floor, target=target, bias_share=bias_share,
+        variance_share=variance_share, **split_excess(validation_error, target, fit, confidence),
+        flat=flat, verdict=verdict, reason=reason,
+        failed_rows=int((rows["status"] != "ok").sum()), units=int(len(valid)))
+
+
+# --- the grid's noise floor ---------------------------------------------------------------
+
+@dataclass(frozen=True)
+class NoiseFloor:
+    """The grid's noise-floor estimate: one setting's asymptote with its band."""
+
+    value: float
+    low: float
+    high: float
+    capacity_index: int
+    regularization_index: int
+    trusted_settings: int
+
+    def as_dict(self) -> dict:
+        return _plain(asdict(self))
+
+
+def estimate_noise_floor(curves: dict, confidence: float) -> NoiseFloor | None:
+    """Lowest asymptote upper band edge among settings whose asymptote is consistent with their data.
+
+    A setting's asymptote is trusted when its band overlaps the bracket
+    [training error, validation error] at the largest measured size (the
+    curves' midpoint check); heavily regularised curves that are still
+    falling can otherwise extrapolate to a floor far below anything
+    measured.  Without any trusted setting, all settings are used.
+    """
+    if not curves:
+        return None
+    trusted = {k: f for k, f in curves.items() if not f.midpoint_check(confidence)["disagree"]}
+    pool = trusted or dict(curves)
+    bands = {k: f.asymptote_band(confidence) for k, f in pool.items()}
+    key = min(bands, key=lambda k: (bands[k][1], pool[k].asymptote, k))
+    low, high = bands[key]
+    return NoiseFloor(float(pool[key].asymptote), float(low), float(high), int(key[0]),
+                      int(key[1]), len(trusted))
+
+
+def diagnose_grid(cells: pd.DataFrame, curves: dict, *, target: float, n_test: float,
+                  confidence: float, thresholds: Thresholds = Thresholds(),
+                  noise_floor: NoiseFloor | None = None) -> dict[tuple[int, int], SettingDiagnosis]:
+    """Diagnose every setting that has successful cells, keyed by (capacity_index, regularization_index)."""
+    floor = noise_floor if noise_floor is not None else estimate_noise_floor(curves, confidence)
+    out: dict[tuple[int, int], SettingDiagnosis] = {}
+    for (ci, ri), rows in cells.groupby(["capacity_index", "regularization_index"], sort=True):
+        if not (rows["status"] == "ok").any():
+            continue
+        out[(int(ci), int(ri))] = diagnose_setting(
+            rows, curves.get((int(ci), int(ri))), target=target,
+            noise_floor=floor.value if floor else None, n_test=n_test,
+            confidence=confidence, thresholds=thresholds)
+    return out
