@@ -345,7 +345,7 @@ class CurveFit:
     train_mean: np.ndarray | None
     boot_theta: np.ndarray         # (n_boot, n_params)
     n_units: int
-    inflation: float               # band scale factor from the residual spread, >= 1
+    inflation: float               # band scale factor (unit count, residual spread), >= 1
     holdout_errors: dict[str, float | None] = field(default_factory=dict)
     setting: SettingInfo | None = None
 
@@ -367,8 +367,10 @@ class CurveFit:
 
     # -- bands
     def _band_from(self, point: np.ndarray, replicates: np.ndarray, confidence: float):
+        """Percentile band of the replicates, its distances from the point scaled by `inflation`."""
         alpha = 1.0 - _check_confidence(confidence)
-        q_low, q_high = np.quantile(replicates, [alpha / 2, 1 - alpha / 2], axis=0)
+        q_low, q_high = np.quantile(replicates, [alpha / 2, 1 - alpha / 2], axis=0,
+                                    method="weibull")
         low = point - self.inflation * (point - q_low)
         high = point + self.inflation * (q_high - point)
         return np.maximum(np.minimum(low, point), 0.0), np.maximum(high, point)
@@ -504,9 +506,9 @@ def _as_matrix(sizes, fold_errors, name: str) -> tuple[np.ndarray, np.ndarray]:
 
 def _choose_family(x, y, se, families: tuple[str, ...]) -> tuple[str, dict[str, float | None]]:
     """Pick the family that best predicts the largest sizes when fitted on the smaller ones."""
+    simplest = "pow3" if "pow3" in families else min(families, key=lambda k: FAMILIES[k].n_params)
     if len(x) < MIN_SIZES_FOR_CHOICE or len(families) == 1:
-        chosen = "pow3" if "pow3" in families else families[0]
-        return chosen, {name: None for name in families}
+        return simplest, {name: None for name in families}
     held = 1 if len(x) < 7 else 2
     xf, yf, wf = x[:-held], y[:-held], 1.0 / se[:-held]
     scores: dict[str, float | None] = {}
@@ -518,6 +520,8 @@ def _choose_family(x, y, se, families: tuple[str, ...]) -> tuple[str, dict[str, 
         theta, _ = _fit_family(fam, xf, yf, wf, _starts(name, xf, yf, wf))
         scores[name] = float(np.mean(np.abs(fam.evaluate(x[-held:], theta) - y[-held:])))
     scored = {k: v for k, v in scores.items() if v is not None}
+    if not scored:
+        return simplest, scores
     best = min(scored.values())
     noise = float(np.sqrt(np.mean(se[-held:] ** 2)))
     margin = max((HOLDOUT_TIE_FACTOR - 1.0) * best, HOLDOUT_TIE_SE * noise)
@@ -574,7 +578,11 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
     theta, cost = _fit_family(fam, x, level, 1.0 / spread, _starts(family, x, level, 1.0 / spread))
 
     dof = len(x) - fam.n_params
-    inflation = max(1.0, math.sqrt(2.0 * cost / dof)) if dof > 0 else 1.0
+    # Band scale: the bootstrap of a mean over n units shrinks its spread by
+    # sqrt((n - 1) / n); a fit whose weighted residuals exceed their standard
+    # errors (chi-square per degree of freedom above 1) widens it further.
+    misfit = max(1.0, math.sqrt(2.0 * cost / dof)) if dof > 0 else 1.0
+    inflation = misfit * math.sqrt(n_units / (n_units - 1))
 
     rng = np.random.default_rng(seed)
     boot = []
@@ -786,3 +794,81 @@ def render_summary(summary: dict) -> str:
     for u in summary.get("unfitted", []):
         out.append(f"{u['capacity']}  {u['regularization']}  not fitted: {u['reason']}")
     return "\n".join(out)
+
+
+# --- joint surface over capacity and data ------------------------------------------
+
+@dataclass(frozen=True)
+class JointSurface:
+    """Error as a function of capacity N and training size D: E + A / N^alpha + B / D^beta.
+
+    The form of Hoffmann et al. (2022); useful where a single setting has
+    too few sizes for its own curve but neighbouring capacities share data.
+    """
+
+    E: float
+    A: float
+    alpha: float
+    B: float
+    beta: float
+
+    @property
+    def params(self) -> dict[str, float]:
+        return {"E": self.E, "A": self.A, "alpha": self.alpha, "B": self.B, "beta": self.beta}
+
+    def predict(self, capacity, size) -> np.ndarray:
+        """Predicted error at capacity value(s) N and training size(s) D."""
+        n = np.asarray(capacity, dtype=float)
+        d = np.asarray(size, dtype=float)
+        return self.E + self.A * np.power(n, -self.alpha) + self.B * np.power(d, -self.beta)
+
+
+def fit_joint_surface(capacity, size, error, *, huber_delta: float = 1e-3) -> JointSurface:
+    """Fit E + A/N^alpha + B/D^beta to (capacity, size, error) points.
+
+    Like Hoffmann et al. (2022): residuals are differences of log errors, the
+    loss is Huber with threshold `huber_delta`, log A, log B, log E are free
+    and alpha, beta >= 0; several starts, the lowest loss wins.  N and D are
+    scaled by their largest values while fitting.
+    """
+    from scipy.optimize import least_squares
+    from scipy.special import logsumexp, softmax
+
+    n = np.asarray(capacity, dtype=float).ravel()
+    d = np.asarray(size, dtype=float).ravel()
+    e = np.asarray(error, dtype=float).ravel()
+    if not (n.size == d.size == e.size):
+        raise GridplanError("Capacity, size and error must have one value per point.")
+    keep = np.isfinite(n) & np.isfinite(d) & np.isfinite(e) & (n > 0) & (d > 0) & (e > 0)
+    if keep.sum() < 6 or len(np.unique(n[keep])) < 2 or len(np.unique(d[keep])) < 2:
+        raise GridplanError("A joint surface needs at least 6 positive errors spread over "
+                            "two or more capacities and sizes.")
+    n, d, e = n[keep], d[keep], e[keep]
+    n_top, d_top = n.max(), d.max()
+    log_n, log_d, log_e = np.log(n / n_top), np.log(d / d_top), np.log(e)
+
+    def terms(t):
+        return np.stack([t[0] - t[1] * log_n, t[2] - t[3] * log_d, np.full_like(log_n, t[4])])
+
+    def residuals(t):
+        return logsumexp(terms(t), axis=0) - log_e
+
+    def jacobian(t):
+        shares = softmax(terms(t), axis=0)
+        return np.column_stack([shares[0], -shares[0] * log_n, shares[1], -shares[1] * log_d,
+                                shares[2]])
+
+    lower = [-np.inf, 0.0, -np.inf, 0.0, -np.inf]
+    upper = [np.inf, 5.0, np.inf, 5.0, np.inf]
+    floor_guess = np.log(0.5 * e.min())
+    best = None
+    for exponent in (0.3, 1.0):
+        for log_a in (np.log(0.1 * e.min()), np.log(e.mean())):
+            start = [log_a, exponent, log_a, exponent, floor_guess]
+            result = least_squares(residuals, start, jac=jacobian, bounds=(lower, upper),
+                                   loss="huber", f_scale=huber_delta, max_nfev=300)
+            if best is None or result.cost < best.cost:
+                best = result
+    la, alpha, lb, beta, le = best.x
+    return JointSurface(E=float(np.exp(le)), A=float(np.exp(la) * n_top ** alpha),
+                        alpha=float(alpha), B=float(np.exp(lb) * d_top ** beta), beta=float(beta))

@@ -326,3 +326,23 @@ def test_family_table_states_each_formula():
     assert FAMILIES["pow4"].formula == "e(m) = a + (b * m + d)^(-c)"
     assert FAMILIES["mmf4"].formula == "e(m) = (a * b + c * m^d) / (b + m^d)"
     assert math.isclose(FAMILIES["pow3"].evaluate(np.array([4.0]), np.array([0.1, 2.0, 0.5]))[0], 1.1)
+
+
+# --- joint surface ---------------------------------------------------------------------------
+
+def test_joint_surface_recovers_its_parameters_and_shrugs_off_an_outlier():
+    from gridplan.curves import JointSurface, fit_joint_surface
+
+    # L(N, D) = E + A / N^alpha + B / D^beta (Hoffmann et al. 2022), synthetic points
+    # drawn from known parameters; the Huber loss on log errors resists one bad point.
+    truth = JointSurface(E=0.05, A=0.8, alpha=0.7, B=3.0, beta=0.5)
+    capacity, size = np.meshgrid([1, 2, 3, 4, 6, 8], [50, 100, 200, 400, 800, 1600])
+    error = truth.predict(capacity, size)
+    fit = fit_joint_surface(capacity, size, error)
+    assert fit.params == pytest.approx(truth.params, rel=1e-4)
+    spoiled = error.copy()
+    spoiled.flat[7] *= 1.8
+    robust = fit_joint_surface(capacity, size, spoiled)
+    assert robust.params == pytest.approx(truth.params, rel=0.02)
+    with pytest.raises(GridplanError, match="joint surface"):
+        fit_joint_surface([1, 1, 1], [10, 20, 30], [0.3, 0.2, 0.1])
