@@ -264,11 +264,15 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
                                 f"training size {size:,}.")
     start = State(ci, ri, size)
     setting_rows = cells[(cells.capacity_index == ci) & (cells.regularization_index == ri)]
+    # a floor found at the grid's capacity edge may be bias: the noise-floor verdict is off then
+    floor_at_edge = floor is not None and _floor_at_capacity_edge(
+        curves, floor, len(capacity_labels), confidence)
+    verdict_floor = floor.value if floor is not None and not floor_at_edge else None
     here = diagnose_setting(setting_rows, curves.get((ci, ri)), target=target,
-                            noise_floor=floor.value if floor else None, n_test=n_test,
+                            noise_floor=verdict_floor, n_test=n_test,
                             confidence=confidence, thresholds=thresholds, size=size)
     settings = diagnose_grid(cells, curves, target=target, n_test=n_test, confidence=confidence,
-                             thresholds=thresholds, noise_floor=floor)
+                             thresholds=thresholds, noise_floor=verdict_floor)
 
     if costs.max_samples is not None and costs.max_samples <= size:
         ladder = [size]
@@ -345,6 +349,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         "noise_floor": floor.value if floor else None,
         "noise_floor_band": [floor.low, floor.high] if floor else None,
         "noise_floor_setting": labels(floor.capacity_index, floor.regularization_index) if floor else None,
+        "noise_floor_at_capacity_edge": floor_at_edge,
         "reachable": reachable, "binding_limit": limit, "binding_detail": limit_detail,
         "plan_cost": found[0] if found else None, "plan": plan, "actions": actions,
         "costs": {"per_sample": costs.per_sample, "capacity_step": costs.capacity_step,
@@ -418,6 +423,9 @@ def render_advice(advice: dict) -> str:
                      f"{_interval(d['setting_asymptote_band'])}")
     lines.append(f"  noise floor estimate {_g(advice['noise_floor'])} {_interval(advice['noise_floor_band'])}"
                  f" (from setting {advice['noise_floor_setting']})")
+    if advice["noise_floor_at_capacity_edge"]:
+        lines.append("  (found at the grid's largest capacity and still falling with capacity: it may "
+                     "include bias, so no noise-floor verdict is given)")
     if d["removable_by_data"] is not None:
         lines.append(f"  excess over target {_g(d['validation_error'] - advice['target'])} = "
                      f"{_g(d['removable_by_data'])} {_interval(d['removable_band'])} more data can remove"

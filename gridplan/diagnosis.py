@@ -27,7 +27,7 @@ the noise floor F):
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 
 import numpy as np
 import pandas as pd
@@ -301,16 +301,18 @@ def estimate_noise_floor(curves: dict, confidence: float) -> NoiseFloor | None:
 
 
 def diagnose_grid(cells: pd.DataFrame, curves: dict, *, target: float, n_test: float,
-                  confidence: float, thresholds: Thresholds = Thresholds(),
-                  noise_floor: NoiseFloor | None = None) -> dict[tuple[int, int], SettingDiagnosis]:
-    """Diagnose every setting that has successful cells, keyed by (capacity_index, regularization_index)."""
-    floor = noise_floor if noise_floor is not None else estimate_noise_floor(curves, confidence)
+                  confidence: float, noise_floor: float | None,
+                  thresholds: Thresholds = Thresholds()) -> dict[tuple[int, int], SettingDiagnosis]:
+    """Diagnose every setting that has successful cells, keyed by (capacity_index, regularization_index).
+
+    `noise_floor` is the value the noise-floor rule compares with (None: the rule is off).
+    """
     out: dict[tuple[int, int], SettingDiagnosis] = {}
     for (ci, ri), rows in cells.groupby(["capacity_index", "regularization_index"], sort=True):
         if not (rows["status"] == "ok").any():
             continue
         out[(int(ci), int(ri))] = diagnose_setting(
             rows, curves.get((int(ci), int(ri))), target=target,
-            noise_floor=floor.value if floor else None, n_test=n_test,
-            confidence=confidence, thresholds=thresholds)
+            noise_floor=noise_floor, n_test=n_test, confidence=confidence,
+            thresholds=thresholds)
     return out

@@ -98,7 +98,9 @@ def quadratic_run(tmp_path_factory):
 
 def test_diagnosis_numbers_agree_with_the_store(quadratic_run):
     _, cells, curves = quadratic_run
-    diagnoses = diagnose_grid(cells, curves, target=0.3, n_test=120.0, confidence=0.9)
+    floor = estimate_noise_floor(curves, 0.9)
+    diagnoses = diagnose_grid(cells, curves, target=0.3, n_test=120.0, confidence=0.9,
+                              noise_floor=floor.value)
     ok = cells[cells.status == "ok"]
     for (ci, ri), d in diagnoses.items():
         rows = ok[(ok.capacity_index == ci) & (ok.regularization_index == ri) & (ok.train_size == 480)]

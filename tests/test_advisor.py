@@ -1,0 +1,186 @@
+"""The advisor on real runs: bias, variance, the noise floor, binding limits, failed cells, text."""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from gridplan.advisor import advise, parse_operating_point, render_advice
+from gridplan.api import open_run
+from gridplan.curves import fit_grid
+from gridplan.errors import GridplanError
+from gridplan.planner import ACTIONS
+from gridplan.store import FoldRow, Store
+from tests.helpers import quadratic_data, run_frame
+
+SIGMA = 0.5
+N_BOOT = 20
+
+
+@pytest.fixture(scope="module")
+def quadratic(tmp_path_factory):
+    """Quadratic truth with N(0, 0.25) noise; straight line, quadratic and cubic fits."""
+    tmp = tmp_path_factory.mktemp("bias")
+    run_dir, cells = run_frame(tmp, quadratic_data(600, SIGMA, seed=3), {
+        "data": {"target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2, 3]},
+                  "regularization": {"values": [1e-6]}},
+        "sizes": {"values": [20, 40, 80, 160, 320, 480]},
+        "resampling": {"folds": 5, "repeats": 1, "seed": 3},
+        "goal": {"target": 0.3, "confidence": 0.9},
+        "costs": {"per_sample": 0.4, "capacity_step": 150.0, "regularization_step": 5.0,
+                  "max_samples": 5000}})
+    return run_dir, fit_grid(cells, n_boot=N_BOOT, seed=0)
+
+
+@pytest.fixture(scope="module")
+def wide(tmp_path_factory):
+    """Six inputs, a mostly linear truth with weak interactions and N(0, 1) noise; few rows."""
+    tmp = tmp_path_factory.mktemp("variance")
+    rng = np.random.default_rng(4)
+    X = rng.normal(size=(500, 6))
+    y = (X @ np.array([1.0, -0.5, 0.5, 0.8, 0.3, -0.7]) + 0.4 * X[:, 0] * X[:, 1]
+         + 0.3 * X[:, 2] ** 2 + 0.3 * X[:, 1] * X[:, 3] + rng.normal(size=500))
+    frame = pd.DataFrame(X, columns=[f"x{i}" for i in range(6)])
+    frame["y"] = y
+    run_dir, cells = run_frame(tmp, frame, {
+        "data": {"target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2]},
+                  "regularization": {"values": [1e-6, 10.0]}},
+        "sizes": {"values": [50, 70, 100, 140]},
+        "resampling": {"folds": 5, "repeats": 3, "seed": 3},
+        "costs": {"regularization_step": 50.0, "max_samples": 5000}})
+    return run_dir, fit_grid(cells, n_boot=N_BOOT, seed=0)
+
+
+def test_high_bias_ranks_more_capacity_first(quadratic):
+    run_dir, curves = quadratic
+    advice = advise(run_dir, at="1,1e-06", curves=curves)
+    # A straight line on quadratic data: training error itself above the target, curves
+    # close and flat (common practice, no published source).
+    assert advice["verdict"] == "high-bias"
+    assert advice["target"] == 0.3                      # from the config's goal
+    assert advice["actions"][0]["action"] == "more-capacity"
+    assert advice["actions"][0]["action"] != "more-data"
+    assert advice["reachable"] and advice["binding_limit"] is None
+    assert [s["action"] for s in advice["plan"]] == ["more-capacity"]
+    assert advice["plan"][0]["cost"] == advice["plan"][0]["cumulative_cost"] == 150.0
+    assert advice["plan"][0]["predicted_error"] <= 0.3
+    # every more-data action is still ranked, each with a plan cost above the capacity step
+    data = [a for a in advice["actions"] if a["action"] == "more-data"]
+    assert data and all(a["plan_cost"] > 150.0 for a in data)
+    assert {a["action"] for a in advice["actions"]} <= set(ACTIONS)
+    json.dumps(advice)                                  # the JSON face needs plain values
+
+
+def test_numbers_behind_the_verdict_come_from_the_store(quadratic):
+    run_dir, curves = quadratic
+    advice = advise(run_dir, at="1,1e-06", curves=curves)
+    cells = open_run(run_dir).cells()
+    rows = cells[(cells.capacity == "1") & (cells.train_size == 480)]
+    d = advice["diagnosis"]
+    assert d["train_error"] == pytest.approx(rows.train_error.mean(), rel=1e-12)
+    assert d["validation_error"] == pytest.approx(rows.validation_error.mean(), rel=1e-12)
+    text = render_advice(advice)
+    assert "HIGH-BIAS" in text
+    assert f"{d['train_error']:.4g}" in text and f"{d['validation_error']:.4g}" in text
+
+
+def test_default_operating_point_is_the_best_measured_setting(quadratic):
+    run_dir, curves = quadratic
+    advice = advise(run_dir, curves=curves)
+    cells = open_run(run_dir).cells()
+    best = cells[cells.train_size == 480].groupby("capacity").validation_error.mean().idxmin()
+    assert advice["operating_point"]["capacity"] == best
+    assert advice["operating_point"]["size"] == 480
+    assert advice["verdict"] == "fine" and advice["plan"] == [] and advice["plan_cost"] == 0
+
+
+def test_target_below_the_noise_floor_is_unreachable(quadratic):
+    run_dir, curves = quadratic
+    # Regression with N(0, sigma^2) noise: best reachable MSE is sigma^2 = 0.25 (standard result).
+    advice = advise(run_dir, target=0.8 * SIGMA ** 2, curves=curves)
+    assert not advice["reachable"]
+    assert advice["binding_limit"] == "noise floor"
+    assert "noise-floor estimate" in advice["binding_detail"]
+    assert advice["noise_floor_band"][0] <= SIGMA ** 2 <= advice["noise_floor_band"][1]
+    assert advice["plan"] == [] and advice["plan_cost"] is None
+    assert all(not a["reachable"] and a["plan_cost"] is None for a in advice["actions"])
+    assert "Binding limit: noise floor" in render_advice(advice)
+
+
+def test_high_variance_cheap_data_wins_and_expensive_data_lets_regularisation_win(wide):
+    run_dir, curves = wide
+    cheap = advise(run_dir, target=1.17, at="2,1e-06", per_sample=0.01, curves=curves)
+    assert cheap["verdict"] == "high-variance"
+    assert cheap["diagnosis"]["gap_test"]["p_value"] < 0.05
+    assert cheap["actions"][0]["action"] == "more-data"
+    assert cheap["plan"][0]["action"] == "more-data"
+    dear = advise(run_dir, target=1.17, at="2,1e-06", per_sample=10.0, curves=curves)
+    assert dear["actions"][0]["action"] == "more-regularization"
+    assert dear["plan_cost"] == 50.0
+    # same run, same curves: only the costs changed, so the forecasts agree
+    assert dear["actions"][0]["predicted_error"] == next(
+        a for a in cheap["actions"] if a["action"] == "more-regularization")["predicted_error"]
+
+
+def test_max_samples_binds_when_the_curve_needs_more_rows(wide):
+    run_dir, curves = wide
+    open_ended = advise(run_dir, target=1.15, at="2,1e-06", curves=curves)
+    assert open_ended["reachable"]
+    assert any(s["action"] == "more-data" for s in open_ended["plan"])
+    capped = advise(run_dir, target=1.15, at="2,1e-06", max_samples=150, curves=curves)
+    assert not capped["reachable"]
+    assert capped["binding_limit"] == "max_samples"
+    assert "150" in capped["binding_detail"]
+
+
+def test_one_capacity_grid_names_the_capacity_range(tmp_path):
+    run_dir, cells = run_frame(tmp_path, quadratic_data(400, SIGMA, seed=5), {
+        "data": {"target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1]}},
+        "sizes": {"values": [20, 40, 80, 160, 320]},
+        "resampling": {"folds": 5, "repeats": 1, "seed": 1}})
+    advice = advise(run_dir, target=0.5, n_boot=N_BOOT)
+    assert not advice["reachable"]
+    assert advice["binding_limit"] == "capacity range"
+    assert "extend the grid" in advice["binding_detail"]
+    assert advice["verdict"] == "high-bias"
+
+
+def test_failed_cells_are_skipped_and_reported(quadratic, tmp_path):
+    run_dir, _ = quadratic
+    copy = tmp_path / "copy"
+    shutil.copytree(run_dir, copy)
+    with Store.open_existing(copy) as store:
+        store.write_rows([FoldRow(2, 0, 5, 0, 1, 480, None, None, 0.01, "failed", "plain",
+                                  "LinAlgError: SVD did not converge")])
+    advice = advise(copy, at="1,1e-06", n_boot=N_BOOT)
+    assert advice["skipped"]["failed_rows"] == 1
+    assert advice["skipped"]["settings"][0]["capacity"] == "3"
+    text = render_advice(advice)
+    assert "Skipped: 1 failed fold rows" in text and "SVD did not converge" in text
+    assert advice["actions"][0]["action"] == "more-capacity"
+
+
+def test_bad_input_is_one_sentence(quadratic):
+    run_dir, curves = quadratic
+    with pytest.raises(GridplanError, match="'7,1e-06' names no setting"):
+        advise(run_dir, at="7,1e-06", curves=curves)
+    with pytest.raises(GridplanError, match="target error must be a positive number"):
+        advise(run_dir, target=-1.0, curves=curves)
+    with pytest.raises(GridplanError, match="confidence"):
+        advise(run_dir, confidence=1.5, curves=curves)
+    with pytest.raises(GridplanError, match="per_sample"):
+        advise(run_dir, per_sample=-2.0, curves=curves)
+
+
+def test_operating_point_labels_may_contain_commas():
+    # nested feature sets are labelled "a,b", "+c"
+    assert parse_operating_point("a,b,0.1", ["a,b", "+c"], ["0.1", "1"]) == (0, 0)
+    assert parse_operating_point("+c,1", ["a,b", "+c"], ["0.1", "1"]) == (1, 1)
+    assert parse_operating_point("+c", ["a,b", "+c"], ["none"]) == (1, 0)
