@@ -43,6 +43,11 @@ DEFAULT_REACH = 64
 
 # --- generic shortest paths -----------------------------------------------------------
 
+def _level(cost: float) -> float:
+    """Cost rounded for comparisons, so float noise cannot break a tie the wrong way."""
+    return round(cost, 9)
+
+
 @dataclass(frozen=True)
 class Edge:
     """One move: an action leading to `target` at `cost`."""
@@ -64,10 +69,10 @@ def cheapest_plan(graph: Graph, start: Hashable,
     counter = itertools.count()
     best: dict[Hashable, tuple[float, int]] = {start: (0.0, 0)}
     came_from: dict[Hashable, tuple[Hashable, Edge]] = {}
-    heap = [(0.0, 0, next(counter), start)]
+    heap = [(0.0, 0, next(counter), 0.0, start)]
     done: set = set()
     while heap:
-        cost, steps, _, node = heapq.heappop(heap)
+        _, steps, _, cost, node = heapq.heappop(heap)
         if node in done:
             continue
         done.add(node)
@@ -79,10 +84,11 @@ def cheapest_plan(graph: Graph, start: Hashable,
             return cost, path[::-1]
         for edge in graph.get(node, ()):
             key = (cost + edge.cost, steps + 1)
-            if edge.target not in done and key < best.get(edge.target, (math.inf, 0)):
+            if edge.target not in done and (_level(key[0]), key[1]) < tuple(
+                    map(_level, best.get(edge.target, (math.inf, 0)))):
                 best[edge.target] = key
                 came_from[edge.target] = (node, edge)
-                heapq.heappush(heap, (key[0], key[1], next(counter), edge.target))
+                heapq.heappush(heap, (_level(key[0]), key[1], next(counter), key[0], edge.target))
     return None
 
 
@@ -286,7 +292,7 @@ def rank_first_moves(states: StateGraph, start: State,
             reason = ("meets the target" if states.is_goal(edge.target)
                       else "meets the target after further steps")
             entry = RankedAction(edge.action, edge, total, reason)
-            key = (0, total, predicted, edge.cost)
+            key = (0, _level(total), predicted, edge.cost)
         ranked.append((key, entry))
     ranked.sort(key=lambda pair: (pair[0], pair[1].action, getattr(pair[1].edge.target, "size", 0)))
     out = [entry for _, entry in ranked]

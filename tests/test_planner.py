@@ -155,3 +155,16 @@ def test_state_graph_moves_costs_and_blocked_moves():
     assert sorted(e.action for e in path) == ["more-capacity", "more-regularization"]
     assert path[-1].target == State(1, 1, 100)
     assert cost == pytest.approx(41.0 + 3.0)
+
+
+def test_equal_cost_plans_prefer_fewer_steps_despite_float_noise():
+    # 0.01 x 58 + 0.01 x 82 and 0.01 x 140 differ only by float rounding: one jump must win
+    errors = {(0, 0): {140: 1.19, 198: 1.189, 280: 1.168}}
+    states = build_state_graph(_toy_forecast(errors), n_capacity=1, n_regularization=1,
+                               ladder=[140, 198, 280], capacity_labels=["2"],
+                               costs=CostModel(per_sample=0.01), target=1.17)
+    cost, path = cheapest_plan(states.graph, State(0, 0, 140), states.is_goal)
+    assert [e.target.size for e in path] == [280]
+    assert cost == pytest.approx(1.4)
+    ranked = rank_first_moves(states, State(0, 0, 140))
+    assert ranked[0].edge.target.size == 280 and ranked[1].plan_cost == pytest.approx(1.4)
