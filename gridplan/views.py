@@ -364,7 +364,7 @@ def _step_text(number: int, step: Mapping[str, Any], state: Mapping[str, Any], r
     if step.get("cumulative_cost") is not None:
         money.append(f"total {_number_text(step['cumulative_cost'])}")
     if step.get("predicted_error") is not None:
-        money.append(f"forecast error {_number_text(step['predicted_error'])}")
+        money.append(f"predicted error {_number_text(step['predicted_error'])}")
     return parts[0] + (f" ({', '.join(money)})" if money else "")
 
 
@@ -380,6 +380,23 @@ def _advice_path(advice: Mapping[str, Any], run: "Run") -> tuple[dict | None, li
         current = _state_of(step, current, run)
         steps.append((step, dict(current)))
     return state, steps
+
+
+def _step_groups(points: list[tuple[float, float] | None]) -> list[tuple[list[int], tuple[float, float]]]:
+    """Plan steps (numbered from 1) grouped where consecutive steps land on the same spot."""
+    groups: list[tuple[list[int], tuple[float, float]]] = []
+    for number, point in enumerate(points[1:], 1):
+        if point is None:
+            continue
+        if groups and groups[-1][1] == point and groups[-1][0][-1] == number - 1:
+            groups[-1][0].append(number)
+        else:
+            groups.append(([number], point))
+    return groups
+
+
+def _numbers_text(numbers: list[int]) -> str:
+    return str(numbers[0]) if len(numbers) == 1 else f"{numbers[0]}-{numbers[-1]}"
 
 
 def _draw_advice(ax: "Axes", data: HeatmapData, advice: Mapping[str, Any], run: "Run") -> list[str]:
@@ -403,26 +420,26 @@ def _draw_advice(ax: "Axes", data: HeatmapData, advice: Mapping[str, Any], run: 
             edge = right + 0.6
             ax.axvspan(len(data.sizes), edge, facecolor=BEYOND_GRID_COLOUR, edgecolor="none",
                        zorder=0.5, gid="beyond-grid")
-            ax.text((len(data.sizes) + edge) / 2, len(data.row_labels) - 0.1,
-                    "beyond\nmeasured\nsizes", ha="center", va="top", fontsize=7, color="#333333")
+            ax.text((len(data.sizes) + edge) / 2, 0.08, "beyond\nmeasured\nsizes",
+                    ha="center", va="bottom", fontsize=7, color="#333333", gid="beyond-grid-label")
             ax.set_xlim(0, edge)
     if len(drawn) > 1:
         ax.plot([p[0] for p in drawn], [p[1] for p in drawn], color=PLAN_COLOUR, linewidth=2.2,
                 zorder=4, path_effects=_stroke(4.0), gid="plan-path",
                 label="plan (numbered steps)")
     previous = None
-    for number, point in enumerate(points):
-        if point is None:
-            continue
-        if previous is not None:
+    for point in drawn:
+        if previous is not None and point != previous:
             ax.annotate("", xy=point, xytext=previous, zorder=4,
                         arrowprops=dict(arrowstyle="-|>", color=PLAN_COLOUR, lw=2.2,
                                         shrinkA=6, shrinkB=8, path_effects=_stroke(4.0)))
-        if number > 0:
-            ax.text(point[0], point[1], str(number), ha="center", va="center", fontsize=8,
-                    fontweight="bold", color="black", zorder=6, gid=f"plan-step-{number}",
-                    bbox=dict(boxstyle="circle,pad=0.25", facecolor=PLAN_COLOUR, edgecolor="black"))
         previous = point
+    for numbers, point in _step_groups(points):
+        if points[0] is not None and point == points[0]:
+            point = (point[0] - 0.24, point[1])  # beside the operating point, not on it
+        ax.text(point[0], point[1], _numbers_text(numbers), ha="center", va="center", fontsize=7,
+                fontweight="bold", color="black", zorder=6, gid="plan-step",
+                bbox=dict(boxstyle="round,pad=0.25", facecolor=PLAN_COLOUR, edgecolor="black"))
     if points[0] is not None:
         ax.plot([points[0][0]], [points[0][1]], marker="D", markersize=10, color="white",
                 markeredgecolor="black", markeredgewidth=1.6, linestyle="none", zorder=5,
