@@ -152,8 +152,18 @@ def _check_parameters(config: Config, plan: ModelPlan) -> None:
                             f"{first}") from None
 
 
-def make_encoder(plan: ModelPlan, capacity_index: int) -> ColumnTransformer:
-    """One-hot for categoricals (fitted on the training part only), numeric passed through."""
+def needs_encoder(plan: ModelPlan) -> bool:
+    """False when the features are all numeric, complete and all used: no encoding step."""
+    return bool(plan.categorical) or plan.impute or plan.feature_sets is not None
+
+
+def make_encoder(plan: ModelPlan, capacity_index: int) -> ColumnTransformer | None:
+    """One-hot for categoricals (fitted on the training part only), numeric passed through.
+
+    None when no encoding is needed (all-numeric, complete data on every capacity step).
+    """
+    if not needs_encoder(plan):
+        return None
     columns = plan.columns(capacity_index)
     numeric = [c for c in plan.numeric if c in columns]
     categorical = [c for c in plan.categorical if c in columns]
@@ -184,19 +194,20 @@ def build_model(plan: ModelPlan, capacity_index: int, regularization_index: int,
             last = RidgeClassifier(alpha=alpha, **params)
         else:
             last = Ridge(alpha=alpha, **params)
-        steps = [("encode", encoder),
-                 ("poly", PolynomialFeatures(degree=degree, include_bias=False)),
+        steps = [("poly", PolynomialFeatures(degree=degree, include_bias=False)),
                  ("scale", StandardScaler()), ("fit", last)]
     elif plan.family == "tree":
         cls = DecisionTreeClassifier if plan.task == "classification" else DecisionTreeRegressor
         params.setdefault("random_state", plan.seed)
-        steps = [("encode", encoder), ("fit", cls(**params))]
+        steps = [("fit", cls(**params))]
     else:
         assert plan.estimator_cls is not None
         estimator = plan.estimator_cls()
         if "random_state" in estimator.get_params() and "random_state" not in params:
             params["random_state"] = plan.seed
-        steps = [("encode", encoder), ("fit", clone(estimator).set_params(**params))]
+        steps = [("fit", clone(estimator).set_params(**params))]
+    if encoder is not None:
+        steps.insert(0, ("encode", encoder))
     model = Pipeline(steps)
     if check:
         # parameter validation without fitting, where the estimator offers it

@@ -17,10 +17,9 @@ from dataclasses import dataclass
 from typing import Callable, Iterator
 
 import numpy as np
-from sklearn.base import clone
 
 from gridplan import metrics
-from gridplan.families import POLY_FAMILIES, ModelPlan, build_model, make_encoder
+from gridplan.families import ModelPlan, build_model, make_encoder, needs_encoder
 from gridplan.spec import GridSpec
 from gridplan.store import FoldRow, Store
 
@@ -60,7 +59,11 @@ class Workload:
 
 
 def workload_of(spec: GridSpec) -> Workload:
-    return Workload(X=spec.dataset.X, y=spec.dataset.y, labels=spec.dataset.labels,
+    """The data and grid a worker needs; a plain float array when no encoding is needed."""
+    X = spec.dataset.X
+    if not needs_encoder(spec.plan):
+        X = X.to_numpy(dtype=float)
+    return Workload(X=X, y=spec.dataset.y, labels=spec.dataset.labels,
                     plan=spec.plan, folds=spec.folds, sizes=spec.sizes,
                     metric=spec.config.metric, fit_time_limit=spec.config.fit_time_limit)
 
@@ -200,21 +203,29 @@ def _errors(model, work: Workload, X_fit, y_fit, X_val, y_val) -> tuple[float, f
 def _plain_fit(task: Task, work: Workload, fold, size: int):
     ci, ri = task.capacity_indices[0], task.regularization_indices[0]
     rows = fold.train[:size]
-    X_fit, y_fit = work.X.iloc[rows], work.y[rows]
-    X_val, y_val = work.X.iloc[fold.test], work.y[fold.test]
+    X_fit, y_fit = _take(work.X, rows), work.y[rows]
+    X_val, y_val = _take(work.X, fold.test), work.y[fold.test]
     model = build_model(work.plan, ci, ri, check=False)
     model.fit(X_fit, y_fit)
     train_error, validation_error = _errors(model, work, X_fit, y_fit, X_val, y_val)
     return train_error, validation_error, "ok", "plain", ""
 
 
+def _take(X, rows: np.ndarray):
+    """Rows of a DataFrame or an array."""
+    return X.iloc[rows] if hasattr(X, "iloc") else X[rows]
+
+
 def _encoded(work: Workload, capacity_index: int, fold, size: int):
     """Encode the training subset and held-out rows with an encoder fitted on the subset."""
     rows = fold.train[:size]
-    encoder = clone(make_encoder(work.plan, capacity_index))
-    Z_fit = np.asarray(encoder.fit_transform(work.X.iloc[rows]), dtype=float)
-    Z_val = np.asarray(encoder.transform(work.X.iloc[fold.test]), dtype=float)
-    return Z_fit, work.y[rows], Z_val, work.y[fold.test]
+    encoder = make_encoder(work.plan, capacity_index)
+    X_fit, X_val = _take(work.X, rows), _take(work.X, fold.test)
+    if encoder is not None:
+        X_fit = encoder.fit_transform(X_fit)
+        X_val = encoder.transform(X_val)
+    return (np.asarray(X_fit, dtype=float), work.y[rows], np.asarray(X_val, dtype=float),
+            work.y[fold.test])
 
 
 def _cell(fast) -> tuple:
