@@ -606,6 +606,11 @@ def curve_points(cells: pd.DataFrame, capacity_index: int, regularization_index:
                        skipped_rows=int(len(rows) - len(ok)))
 
 
+def _level_text(value: float, scale: float) -> str:
+    """An error level to 3 significant figures, with round-off dust (below 1e-6 x scale) as 0."""
+    return "0" if abs(value) < 1e-6 * abs(scale) else f"{value:.3g}"
+
+
 def _panel_top(points: CurvePoints, fit: "CurveFit | None", target: float | None,
                confidence: float) -> float:
     """Upper y limit: the highest value drawn, capped at CURVE_TOP_FACTOR x the reference level."""
@@ -646,8 +651,10 @@ def _draw_curves(ax: "Axes", points: CurvePoints, fit: "CurveFit | None", target
         ax.plot(ahead, fit.predict(ahead), color=VALIDATION_COLOUR, linestyle="--", linewidth=1.8,
                 gid="forecast", label=f"forecast to {FORECAST_FACTOR:g}x with {confidence:.0%} band")
         floor_low, floor_high = fit.asymptote_band(confidence)
+        scale = float(np.nanmax(points.validation_mean))
+        floor_text = ", ".join(_level_text(v, scale) for v in (floor_low, floor_high))
         ax.axhline(fit.asymptote, color=FLOOR_COLOUR, linestyle=":", linewidth=1.5, gid="noise-floor",
-                   label=f"noise floor estimate {fit.asymptote:.3g} [{floor_low:.3g}, {floor_high:.3g}]")
+                   label=f"noise floor estimate {_level_text(fit.asymptote, scale)} [{floor_text}]")
         largest = FORECAST_FACTOR * start
     else:
         notes.append("no curve fitted, so no forecast")
