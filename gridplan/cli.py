@@ -240,6 +240,52 @@ def _plot_curves(run_dir: Path, summary: dict, output: Optional[Path], boot: int
 
 @app.command()
 @friendly
+def heatmap(run_dir: Path = typer.Argument(..., help="Run folder."),
+            show: str = typer.Option("validation", "--show", help="validation, train or gap."),
+            axis: str = typer.Option("capacity", "--axis", help="capacity or regularization (rows of the map)."),
+            capacity: Optional[str] = typer.Option(None, "--capacity",
+                                                   help="Capacity label for --axis regularization."),
+            output: Optional[Path] = typer.Option(None, "-o", "--output", help="PNG or SVG file."),
+            with_plan: bool = typer.Option(False, "--plan", help="Draw the operating point and the plan."),
+            target: Optional[float] = typer.Option(None, "--target", help="Target error (default: the config's).")):
+    """Draw the grid as a heatmap of training size against capacity or regularisation."""
+    from gridplan import api, views
+    run = api.open_run(run_dir)
+    advice = None
+    if with_plan:
+        from gridplan.advisor import advise as make_advice
+        advice = make_advice(run_dir, target=target)
+    figure = views.heatmap_figure(run, show=show, axis=axis, capacity=capacity, advice=advice,
+                                  target=target)
+    path = views.save_figure(figure, output or Path(run_dir) / f"heatmap-{axis}-{show}.png")
+    typer.echo(f"heatmap written to {path}")
+
+
+@app.command()
+@friendly
+def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
+           target: Optional[float] = typer.Option(None, "--target", help="Target error (default: the config's)."),
+           at: Optional[str] = typer.Option(None, "--at", help="Operating point as CAPACITY,REG labels."),
+           confidence: Optional[float] = typer.Option(None, "--confidence", help="Confidence for forecasts."),
+           per_sample: Optional[float] = typer.Option(None, "--per-sample", help="Cost of one more labelled row."),
+           capacity_step: Optional[float] = typer.Option(None, "--capacity-step", help="Cost of one capacity step."),
+           regularization_step: Optional[float] = typer.Option(None, "--regularization-step",
+                                                               help="Cost of one regularisation step."),
+           max_samples: Optional[int] = typer.Option(None, "--max-samples", help="Most training rows ever available."),
+           boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve."),
+           as_json: bool = typer.Option(False, "--json", help="Print JSON instead of text.")):
+    """Diagnose bias and variance and plan the cheapest way to the target error."""
+    import json
+    from gridplan.advisor import advise as make_advice, render_advice
+    advice = make_advice(run_dir, target=target, at=at, confidence=confidence,
+                         per_sample=per_sample, capacity_step=capacity_step,
+                         regularization_step=regularization_step, max_samples=max_samples,
+                         n_boot=boot)
+    typer.echo(json.dumps(advice, indent=2) if as_json else render_advice(advice))
+
+
+@app.command()
+@friendly
 def backtest(config: Path = typer.Argument(..., help="TOML config file."),
              fraction: float = typer.Option(0.25, "--fraction", help="Share of the training fold the curves may see."),
              out: Optional[Path] = typer.Option(None, "--out", help="Run folder (default outputs/<name>-backtest)."),

@@ -109,3 +109,52 @@ def test_help_answers_without_heavy_imports():
             "print(any(m in sys.modules for m in ('sklearn', 'pandas', 'matplotlib')))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def _quadratic_run(tmp_path):
+    from tests.helpers import quadratic_data
+    quadratic_data(400, 0.5, seed=3).to_csv(tmp_path / "q.csv", index=False)
+    config = write_config(tmp_path, {
+        "data": {"path": "q.csv", "target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2, 3]},
+                  "regularization": {"values": [0.01, 1.0]}},
+        "sizes": {"count": 6, "smallest": 10}, "resampling": {"folds": 4, "seed": 2},
+        "goal": {"metric": "mse", "target": 0.3},
+        "costs": {"per_sample": 1.0, "capacity_step": 50.0, "max_samples": 5000}}, "q.toml")
+    result = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "q"), "-q", "-j", "1"])
+    assert result.exit_code == 0, result.output
+    return tmp_path / "q"
+
+
+def test_curves_advise_and_heatmap_commands(tmp_path):
+    import json
+    run_dir = _quadratic_run(tmp_path)
+    result = runner.invoke(app, ["curves", str(run_dir), "--json", "--boot", "30"])
+    assert result.exit_code == 0, result.output
+    summary = json.loads(result.output)
+    assert len(summary["settings"]) == 6
+    for row in summary["settings"]:
+        for key in ["capacity", "regularization", "family", "asymptote", "asymptote_low",
+                    "asymptote_high", "samples_needed"]:
+            assert key in row
+        assert row["asymptote_low"] <= row["asymptote"] <= row["asymptote_high"]
+
+    result = runner.invoke(app, ["advise", str(run_dir), "--json", "--boot", "30", "--at", "1,0.01"])
+    assert result.exit_code == 0, result.output
+    advice = json.loads(result.output)
+    assert advice["verdict"] in {"high-bias", "high-variance", "both", "noise-floor", "fine"}
+    for key in ["noise_floor", "reachable", "binding_limit", "plan", "actions"]:
+        assert key in advice
+    # a straight line on quadratic data with sigma^2 = 0.25 < target 0.3: capacity first
+    assert advice["verdict"] == "high-bias"
+    assert advice["actions"][0]["action"] == "more-capacity"
+    names = {a["action"] for a in advice["actions"]}
+    assert names <= {"more-data", "more-capacity", "less-capacity", "more-regularization",
+                     "less-regularization"}
+
+    result = runner.invoke(app, ["heatmap", str(run_dir), "--show", "gap", "-o",
+                                 str(tmp_path / "gap.svg")])
+    assert result.exit_code == 0, result.output
+    assert (tmp_path / "gap.svg").read_text().lstrip().startswith("<?xml")
+    result = runner.invoke(app, ["advise", str(run_dir), "--at", "9,9"])
+    assert result.exit_code == 1 and "Traceback" not in result.output
