@@ -70,15 +70,17 @@ def workload_of(spec: GridSpec) -> Workload:
 
 def fast_path_kind(plan: ModelPlan, metric: str) -> str | None:
     """Which fast path a grid can take, or None for plain fits."""
-    from gridplan.fastpaths import has_fast_path
+    from gridplan.fastpaths import has_fast_path, tree_params_commute
     if plan.family is None:
         return None
     if not has_fast_path(plan.family, plan.regularization_param, plan.task, metric):
         return None
-    if plan.family == "poly-ridge":
+    if plan.family == "poly-ridge" and set(plan.params) <= {"degree", "alpha"}:
         return "ridge-path"
     if plan.family == "tree" and plan.feature_sets is None:
-        return "tree-path"
+        fixed = {k: v for k, v in plan.params.items() if k != "random_state"}
+        if tree_params_commute(fixed):
+            return "tree-path"
     return None
 
 

@@ -211,3 +211,26 @@ def test_failing_cells_are_recorded_and_the_rest_completes(tmp_path):
     assert failed.message.str.contains("ValueError").all()
     assert failed.train_error.isna().all()
     assert (cells[cells.status == "ok"].validation_error > 0).all()
+
+
+def test_fast_path_is_chosen_only_where_it_is_exact(tmp_path):
+    from gridplan.runner import fast_path_kind
+    frame = linear_data(120, 2, 0.3, seed=4)
+    frame.to_csv(tmp_path / "data.csv", index=False)
+
+    def kind(model, metric="mse"):
+        config = load_config(write_config(tmp_path, {
+            "data": {"path": "data.csv", "target": "y"}, "model": model,
+            "goal": {"metric": metric}}))
+        return fast_path_kind(resolve(config).plan, metric)
+
+    assert kind({"family": "poly-ridge", "capacity": {"values": [1, 2]}}) == "ridge-path"
+    assert kind({"family": "poly-ridge", "params": {"fit_intercept": False},
+                 "capacity": {"values": [1, 2]}}) is None
+    assert kind({"family": "tree", "capacity": {"values": [1, 2]}}) == "tree-path"
+    assert kind({"family": "tree", "capacity": {"values": [1, 2]},
+                 "regularization": {"param": "ccp_alpha", "values": [0.0, 0.1]}}) is None
+    assert kind({"family": "tree", "params": {"splitter": "random"},
+                 "capacity": {"values": [1, 2]}}) is None
+    assert kind({"estimator": "sklearn.linear_model.Ridge",
+                 "capacity": {"param": "alpha", "values": [1.0]}}) is None
