@@ -157,12 +157,13 @@ def test_band_at_twice_the_largest_size_covers_the_truth_about_as_promised():
     for i in range(draws):
         a, b, c = rng.uniform(0.05, 0.3), rng.uniform(0.5, 3.0), rng.uniform(0.3, 0.8)
         fit = fit_setting(SIZES, noisy_folds(pow3(SIZES, a, b, c), 10, 0.08, rng),
-                          n_boot=30, seed=i)
+                          families=("pow3",), n_boot=25, seed=i)
         low, high = fit.band(2 * SIZES[-1], 0.9)
         hits += low <= pow3(2 * SIZES[-1], a, b, c) <= high
     # Synthetic pow3 truth (Cortes et al. 1994 form) plus fold noise: a nominal 90% band
     # should cover the truth in roughly 80-97% of draws (common practice, no published source
-    # for the tolerance).
+    # for the tolerance).  The family is fixed so the test stays fast; family choice is
+    # tested on its own above.
     assert 0.80 <= hits / draws <= 0.97
 
 
