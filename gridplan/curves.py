@@ -301,12 +301,19 @@ def _fit_family(fam: Family, x, y, w, starts: Iterable[np.ndarray]) -> tuple[np.
 
 # --- level and spread at each size ------------------------------------------
 
+def _row_means(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Mean of the finite values in each row (NaN for an empty row) and their count."""
+    counts = np.sum(np.isfinite(values), axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.nansum(values, axis=1) / counts, counts
+
+
 def _level_and_spread(errors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Mean over units and floored standard error of the mean, per size (rows)."""
-    counts = np.sum(np.isfinite(errors), axis=1)
-    level = np.nanmean(errors, axis=1)
+    level, counts = _row_means(errors)
     with np.errstate(invalid="ignore", divide="ignore"):
-        spread = np.nanstd(errors, axis=1, ddof=1) / np.sqrt(counts)
+        squares = np.nansum((errors - level[:, None]) ** 2, axis=1)
+        spread = np.sqrt(squares / (counts - 1) / counts)
     spread = np.where(counts > 1, spread, np.nan)
     positive = spread[np.isfinite(spread) & (spread > 0)]
     if positive.size:
@@ -616,8 +623,7 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
     if train_fold_errors is not None:
         _, train = _as_matrix(sizes_in, train_fold_errors, "training")
         train = train[order][usable]
-        with np.errstate(all="ignore"):
-            train_mean = np.where(np.any(np.isfinite(train), axis=1), np.nanmean(train, axis=1), np.nan)
+        train_mean = _row_means(train)[0]
 
     scale = float(sizes[-1])
     x = sizes / scale
@@ -794,7 +800,7 @@ def render_summary(summary: dict) -> str:
     """Plain-text table of a curves summary, one line per setting."""
     conf = summary["confidence"]
     headers = ["capacity", "regularization", "family", "noise floor [band]",
-               "error @ size", "2x forecast [band]", "samples needed [band]", "notes"]
+               "error @ largest size", "error @ 2x size [band]", "samples needed [band]", "notes"]
     lines = []
     for s in summary["settings"]:
         notes = []
@@ -806,6 +812,8 @@ def render_summary(summary: dict) -> str:
         if s["reachable"]:
             samples = (f"{_size(s['samples_needed'])} [{_size(s['samples_needed_low'])}, "
                        f"{_size(s['samples_needed_high'])}]")
+            if s["samples_needed"] <= s["largest_size"]:
+                notes.append("target already met at the measured sizes")
         elif s["reachable"] is None:
             samples = "-"
         else:
