@@ -11,7 +11,6 @@ import pytest
 from scipy.stats import norm
 
 from gridplan.curves import (
-    DEFAULT_FAMILIES,
     FAMILIES,
     WIDE_BAND_RATIO,
     curves_summary,
