@@ -27,6 +27,9 @@ ProgressCallback = Callable[[int, int], None]   # (fits done, fits total)
 
 FLUSH_SECONDS = 0.5
 FLUSH_ROWS = 500
+#: Estimated one-core seconds of remaining work below which a local run with
+#: jobs > 1 stays in this process instead of starting worker processes.
+LOCAL_ONLY_SECONDS = 3.0
 
 
 @dataclass(frozen=True)
@@ -90,7 +93,7 @@ def build_tasks(spec: GridSpec, done: set[tuple[int, int, int, int, int]]) -> li
     n_cap, n_reg = len(plan.capacity_values), len(plan.regularization_values)
     kind = fast_path_kind(plan, spec.config.metric) if spec.config.fast_path else None
     tasks = []
-    for size_index in range(len(spec.sizes)):
+    for size_index in reversed(range(len(spec.sizes))):   # largest first: a shorter tail
         for fold_index, fold in enumerate(spec.folds):
             def missing(ci: int, ri: int) -> bool:
                 return (ci, ri, size_index, fold.repeat, fold.fold) not in done
@@ -274,6 +277,32 @@ def chunked(tasks: list[Task], size: int) -> list[tuple[Task, ...]]:
     return [tuple(tasks[i:i + size]) for i in range(0, len(tasks), size)]
 
 
+def _head_start(tasks: list[Task], work: Workload) -> Iterator[list[FoldRow]]:
+    """Run the largest task here; if the rest is small, run it here too. Returns what is left for a pool.
+
+    Each local worker process imports scikit-learn before its first task
+    (about 1.5 s of one core on a quiet 2-core machine), so a pool only pays
+    for itself when the remaining one-core work exceeds about LOCAL_ONLY_SECONDS.
+    The rest is estimated from the probe, taking work as proportional to
+    training rows x fits, as estimate_seconds does.
+    """
+    if not tasks:
+        return []
+    probe = max(range(len(tasks)), key=lambda i: (work.sizes[tasks[i].size_index], tasks[i].n_fits))
+    started = time.process_time()   # one core's seconds, less disturbed by a busy machine
+    rows = run_task(tasks[probe], work)
+    seconds = time.process_time() - started
+    yield rows
+    rest = tasks[:probe] + tasks[probe + 1:]
+    probe_work = work.sizes[tasks[probe].size_index] * tasks[probe].n_fits
+    estimate = seconds * sum(work.sizes[t.size_index] * t.n_fits for t in rest) / probe_work
+    if estimate >= LOCAL_ONLY_SECONDS:
+        return rest
+    for task in rest:
+        yield run_task(task, work)
+    return []
+
+
 def execute(tasks: list[Task], work: Workload, *, jobs: int = 1, backend: str | None = None,
             backend_options: dict | None = None, chunk: int = 1) -> Iterator[list[FoldRow]]:
     """Yield the rows of each task (or chunk of tasks) as it finishes, in any order.
@@ -285,11 +314,15 @@ def execute(tasks: list[Task], work: Workload, *, jobs: int = 1, backend: str | 
         for task in tasks:
             yield run_task(task, work)
         return
+    if backend is None:
+        tasks = yield from _head_start(list(tasks), work)
+        if not tasks:
+            return
     from joblib import Parallel, delayed, parallel_config
     options = dict(backend_options or {})
     if backend in (None, "loky"):
         options.setdefault("inner_max_num_threads", 1)
-    if backend == "dask":
+    if backend in ("dask", "gridplan-dask"):
         options.setdefault("scatter", [work])   # one copy per worker, not one per task
     with parallel_config(backend=backend or "loky", n_jobs=jobs, **options):
         parallel = Parallel(return_as="generator_unordered", batch_size="auto")
