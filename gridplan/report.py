@@ -167,13 +167,33 @@ def read_backtest(run_dir: str | Path) -> tuple[dict | None, str | None]:
         result = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
         return None, f"{BACKTEST_FILE} could not be read ({exc.__class__.__name__}), so it is not shown."
-    needed = ("predicted", "low", "high", "measured")
-    rows = result.get("rows") if isinstance(result, dict) else None
-    if not isinstance(rows, list) or not rows or not all(
-            isinstance(r, dict) and all(isinstance(r.get(k), (int, float)) for k in needed) for r in rows):
+    if not _looks_like_backtest(result):
         return None, (f"{BACKTEST_FILE} does not hold a backtest result (a list of rows with "
                       f"predicted, low, high and measured errors), so it is not shown.")
     return result, None
+
+
+def _looks_like_backtest(result: Any) -> bool:
+    """True when `result` has the fields the report shows, with numbers where numbers belong."""
+    def number(value: Any, optional: bool = False) -> bool:
+        return (optional and value is None) or (
+            isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
+
+    if not isinstance(result, dict):
+        return False
+    rows = result.get("rows")
+    if not isinstance(rows, list) or not rows:
+        return False
+    for row in rows:
+        if not isinstance(row, dict) or not all(number(row.get(k)) for k in
+                                                ("predicted", "low", "high", "measured")):
+            return False
+        if not number(row.get("rel_error"), optional=True):
+            return False
+    sizes = result.get("fitted_sizes", [])
+    return (all(number(result.get(k), optional=True) for k in
+                ("median_abs_rel_error", "coverage", "confidence", "full_size"))
+            and isinstance(sizes, list) and all(number(v) for v in sizes))
 
 
 def gather_inputs(run_dir: str | Path, *, target: float | None = None,
@@ -750,7 +770,7 @@ def _backtest_section(inputs: ReportInputs, number: int) -> Markup:
     rows = result["rows"]
     median = result.get("median_abs_rel_error")
     coverage = result.get("coverage")
-    confidence = result.get("confidence", inputs.confidence)
+    confidence = result.get("confidence") or inputs.confidence
     summary = (f"Curves were fitted on sizes {', '.join(_count(s) for s in result.get('fitted_sizes', []))} "
                f"and asked for the error at {_count(result.get('full_size'))} rows. Median relative "
                f"error {'–' if median is None else f'{median:.1%}'}; the measured value fell inside "

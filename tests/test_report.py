@@ -310,9 +310,15 @@ def test_unreadable_backtest_file_is_noted_not_fatal(tmp_path):
     (tmp_path / BACKTEST_FILE).write_text("{not json", encoding="utf-8")
     result, note = read_backtest(tmp_path)
     assert result is None and "could not be read" in note
-    (tmp_path / BACKTEST_FILE).write_text(json.dumps({"rows": [{"predicted": "a"}]}), encoding="utf-8")
-    result, note = read_backtest(tmp_path)
-    assert result is None and "does not hold a backtest result" in note
+    good = {"rows": [{"predicted": 1.0, "low": 0.8, "high": 1.2, "measured": 1.1, "rel_error": 0.1}],
+            "coverage": 1.0, "full_size": 160, "fitted_sizes": [20, 40]}
+    for broken in ({"rows": [{"predicted": "a"}]}, {**good, "coverage": "most"},
+                   {**good, "fitted_sizes": "20,40"}, {**good, "rows": []}, [good]):
+        (tmp_path / BACKTEST_FILE).write_text(json.dumps(broken), encoding="utf-8")
+        result, note = read_backtest(tmp_path)
+        assert result is None and "does not hold a backtest result" in note
+    (tmp_path / BACKTEST_FILE).write_text(json.dumps(good), encoding="utf-8")
+    assert read_backtest(tmp_path) == (good, None)
 
 
 # --- bad input -----------------------------------------------------------------------------------------
