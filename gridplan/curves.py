@@ -270,11 +270,16 @@ def _starts(family: str, x, y, w) -> list[np.ndarray]:
     raise GridplanError(f"Unknown curve family {family!r}; choose from {', '.join(FAMILIES)}.")
 
 
-def _fit_family(fam: Family, x, y, w, starts: Iterable[np.ndarray]) -> tuple[np.ndarray, float]:
-    """Weighted bounded least squares from each start; the lowest cost wins."""
+def _fit_family(fam: Family, x, y, w, starts: Iterable[np.ndarray],
+                floor: float = 0.0) -> tuple[np.ndarray, float]:
+    """Weighted bounded least squares from each start; the lowest cost wins.
+
+    `floor` is a lower bound on the asymptote (theta[0] in every family).
+    """
     from scipy.optimize import least_squares
 
-    lower, upper = np.array(fam.lower), np.array(fam.upper)
+    lower, upper = np.array(fam.lower, dtype=float), np.array(fam.upper, dtype=float)
+    lower[0] = max(lower[0], floor)
 
     def residuals(theta):
         return (fam.evaluate(x, theta) - y) * w
@@ -373,6 +378,7 @@ class CurveFit:
     inflation: float               # band scale factor (unit count, residual spread), >= 1
     holdout_errors: dict[str, float | None] = field(default_factory=dict)
     setting: SettingInfo | None = None
+    asymptote_min: float = 0.0     # lower bound imposed on the asymptote (shared floor)
 
     # -- point forecasts
     @property
@@ -529,7 +535,8 @@ def _as_matrix(sizes, fold_errors, name: str) -> tuple[np.ndarray, np.ndarray]:
     return sizes, errors
 
 
-def _choose_family(x, y, se, families: tuple[str, ...]) -> tuple[str, dict[str, float | None]]:
+def _choose_family(x, y, se, families: tuple[str, ...],
+                   floor: float = 0.0) -> tuple[str, dict[str, float | None]]:
     """Pick the family that best predicts the largest sizes when fitted on the smaller ones."""
     simplest = "pow3" if "pow3" in families else min(families, key=lambda k: FAMILIES[k].n_params)
     if len(x) < MIN_SIZES_FOR_CHOICE or len(families) == 1:
@@ -542,7 +549,7 @@ def _choose_family(x, y, se, families: tuple[str, ...]) -> tuple[str, dict[str, 
         if len(xf) < fam.n_params + 1:
             scores[name] = None
             continue
-        theta, _ = _fit_family(fam, xf, yf, wf, _starts(name, xf, yf, wf))
+        theta, _ = _fit_family(fam, xf, yf, wf, _starts(name, xf, yf, wf), floor)
         scores[name] = float(np.mean(np.abs(fam.evaluate(x[-held:], theta) - y[-held:])))
     scored = {k: v for k, v in scores.items() if v is not None}
     if not scored:
@@ -556,7 +563,7 @@ def _choose_family(x, y, se, families: tuple[str, ...]) -> tuple[str, dict[str, 
 
 
 def _bootstrap(fam: Family, x, errors: np.ndarray, theta: np.ndarray, n_boot: int,
-               rng: np.random.Generator) -> np.ndarray:
+               rng: np.random.Generator, floor: float = 0.0) -> np.ndarray:
     """Refit the family, starting from `theta`, to `n_boot` resamples of whole units (columns)."""
     n_units = errors.shape[1]
     boot = []
@@ -566,7 +573,7 @@ def _bootstrap(fam: Family, x, errors: np.ndarray, theta: np.ndarray, n_boot: in
         if keep.sum() < fam.n_params:
             continue
         level, spread = _level_and_spread(picked[keep])
-        boot.append(_fit_family(fam, x[keep], level, 1.0 / spread, [theta])[0])
+        boot.append(_fit_family(fam, x[keep], level, 1.0 / spread, [theta], floor)[0])
     return np.array(boot).reshape(-1, fam.n_params)
 
 
@@ -589,8 +596,11 @@ def _band_inflation(chi_square: float, dof: int, n_units: int) -> float:
 def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
                 families: Iterable[str] = DEFAULT_FAMILIES, n_boot: int = 200,
                 seed: int | np.random.SeedSequence = 0,
-                setting: SettingInfo | None = None) -> CurveFit:
+                setting: SettingInfo | None = None, asymptote_min: float = 0.0) -> CurveFit:
     """Fit one learning curve.
+
+    `asymptote_min` bounds the asymptote from below (see `fit_grid`'s shared
+    noise floor): no setting can beat the error every setting shares.
 
     `fold_errors` has one row per training size and one column per
     (repeat, fold) unit (NaN where a unit is missing); `train_fold_errors`
@@ -628,20 +638,21 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
     scale = float(sizes[-1])
     x = sizes / scale
     level, spread = _level_and_spread(errors)
-    family, holdout = _choose_family(x, level, spread, families)
+    family, holdout = _choose_family(x, level, spread, families, asymptote_min)
     fam = FAMILIES[family]
-    theta, cost = _fit_family(fam, x, level, 1.0 / spread, _starts(family, x, level, 1.0 / spread))
+    theta, cost = _fit_family(fam, x, level, 1.0 / spread, _starts(family, x, level, 1.0 / spread),
+                              asymptote_min)
 
     dof = len(x) - fam.n_params
     inflation = _band_inflation(2.0 * cost, dof, n_units)
 
-    boot = _bootstrap(fam, x, errors, theta, n_boot, np.random.default_rng(seed))
+    boot = _bootstrap(fam, x, errors, theta, n_boot, np.random.default_rng(seed), asymptote_min)
     if len(boot) < 2:
         raise GridplanError("Too few bootstrap resamples could be fitted; the curve has too many gaps.")
     return CurveFit(family=family, theta=theta, scale=scale, sizes=sizes,
                     validation_mean=level, validation_se=spread, train_mean=train_mean,
                     boot_theta=np.array(boot), n_units=n_units, inflation=inflation,
-                    holdout_errors=holdout, setting=setting)
+                    holdout_errors=holdout, setting=setting, asymptote_min=asymptote_min)
 
 
 # --- a whole grid ----------------------------------------------------------------
@@ -650,15 +661,81 @@ CELL_COLUMNS = ("capacity_index", "regularization_index", "capacity", "regulariz
                 "train_size", "repeat", "fold", "train_error", "validation_error", "status")
 
 
+#: A setting's asymptote informs the shared noise floor when its band (at
+#: FLOOR_CONFIDENCE) is no wider than INFORMATIVE_FLOOR_RATIO x the asymptote,
+#: its curve has nearly converged (the measured error at the largest size is
+#: within CONVERGED_FRACTION x the asymptote of it) and it is consistent with
+#: the setting's own training/validation bracket.
+INFORMATIVE_FLOOR_RATIO = 1.0
+CONVERGED_FRACTION = 0.1
+FLOOR_CONFIDENCE = 0.9
+
+
+@dataclass(frozen=True)
+class SharedFloor:
+    """The irreducible error all settings share: estimate, band, and where it came from."""
+
+    value: float
+    low: float
+    high: float
+    capacity_index: int
+    regularization_index: int
+    informative: int          # how many settings had a well-determined asymptote
+
+
+def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
+                 confidence: float = FLOOR_CONFIDENCE) -> SharedFloor | None:
+    """Estimate the noise floor from the settings whose asymptote is well determined.
+
+    Every setting's asymptote is the noise floor plus its own bias, so the
+    floor lies below all of them. Among informative settings (narrow
+    asymptote band, nearly converged, consistent with their
+    training/validation bracket) the one with the lowest upper band edge
+    gives the estimate and its band. None when no setting qualifies, or when
+    that estimate lies above another setting's measured error (the converged
+    settings are biased, so the data bound the floor only from above).
+    Curves still falling steeply are left out: their asymptote is an
+    extrapolation that can land anywhere down to zero.
+    """
+    informative = {}
+    for key, fit in fits.items():
+        if fit.asymptote_min > 0:      # pinned by an earlier floor, not measured
+            continue
+        low, high = fit.asymptote_band(confidence)
+        if high - low > INFORMATIVE_FLOOR_RATIO * max(fit.asymptote, _TINY):
+            continue
+        if fit.validation_mean[-1] - fit.asymptote > CONVERGED_FRACTION * max(fit.asymptote, _TINY):
+            continue
+        if fit.midpoint_check(confidence).get("disagree"):
+            continue
+        informative[key] = (fit.asymptote, low, high)
+    if not informative:
+        return None
+    key = min(informative, key=lambda k: (informative[k][2], informative[k][0], k))
+    value, low, high = informative[key]
+    # The floor lies below every measured validation error (up to its noise).
+    # When the converged settings' floor sits above another setting's
+    # measurement they are biased, and the data do not pin the floor down.
+    measured = [(float(f.validation_mean[-1]), float(f.validation_se[-1])) for f in fits.values()]
+    if value > min(m + se for m, se in measured):
+        return None
+    high = min(high, min(m + se for m, se in measured))
+    low = min(low, min(m - 2.0 * se for m, se in measured))
+    return SharedFloor(float(value), float(max(low, 0.0)), float(high), int(key[0]),
+                       int(key[1]), len(informative))
+
+
 class GridCurves(dict):
     """Fitted curves keyed by (capacity_index, regularization_index).
 
-    `unfitted` lists the settings that could not be fitted, each with a reason.
+    `unfitted` lists the settings that could not be fitted, each with a reason;
+    `floor` is the shared noise floor (None when no setting determines it).
     """
 
     def __init__(self, *args, unfitted: list[dict] | None = None, **kwargs):
         super().__init__(*args, **kwargs)
         self.unfitted: list[dict] = list(unfitted or [])
+        self.floor: SharedFloor | None = None
 
 
 def _setting_matrices(rows: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -673,14 +750,14 @@ def _setting_matrices(rows: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.nd
 
 
 def _fit_one(info: SettingInfo, rows: pd.DataFrame, families, n_boot: int,
-             seed: np.random.SeedSequence) -> CurveFit | dict:
+             seed: np.random.SeedSequence, asymptote_min: float = 0.0) -> CurveFit | dict:
     """Fit one setting, or describe why it could not be fitted."""
     try:
         if rows.empty:
             raise GridplanError("no rows with status 'ok'")
         sizes, validation, training = _setting_matrices(rows)
         return fit_setting(sizes, validation, training, families=families, n_boot=n_boot,
-                           seed=seed, setting=info)
+                           seed=seed, setting=info, asymptote_min=asymptote_min)
     except GridplanError as problem:
         return {"capacity_index": info.capacity_index,
                 "regularization_index": info.regularization_index,
@@ -689,12 +766,16 @@ def _fit_one(info: SettingInfo, rows: pd.DataFrame, families, n_boot: int,
 
 
 def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
-             n_boot: int = 200, seed: int = 0, n_jobs: int = 1) -> GridCurves:
+             n_boot: int = 200, seed: int = 0, n_jobs: int = 1,
+             share_floor: bool = True) -> GridCurves:
     """Fit a learning curve for every (capacity, regularisation) setting of a grid.
 
     Only rows with status "ok" are used; the others are counted per setting.
     Each setting's bootstrap is seeded from (seed, capacity_index,
     regularization_index), so results do not depend on order or `n_jobs`.
+    With `share_floor`, the noise floor is estimated from the well-determined
+    settings (`shared_floor`) and every setting whose asymptote fell below the
+    floor's lower band edge is refitted with its asymptote bounded there.
     """
     missing = [c for c in CELL_COLUMNS if c not in cells.columns]
     if missing:
@@ -709,18 +790,30 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
                            str(rows["regularization"].iloc[0]), int((~ok).sum()))
         jobs.append((info, rows[ok], families, n_boot,
                      np.random.SeedSequence([int(seed), int(cap), int(reg)])))
-    if n_jobs == 1:
-        results = [_fit_one(*job) for job in jobs]
-    else:
-        from joblib import Parallel, delayed
-        results = Parallel(n_jobs=n_jobs)(delayed(_fit_one)(*job) for job in jobs)
     grid = GridCurves()
-    for (info, *_), result in zip(jobs, results):
+    for (info, *_), result in zip(jobs, _run_fits(jobs, n_jobs)):
         if isinstance(result, CurveFit):
             grid[(info.capacity_index, info.regularization_index)] = result
         else:
             grid.unfitted.append(result)
+    grid.floor = shared_floor(grid) if grid else None
+    if share_floor and grid.floor is not None:
+        bound = grid.floor.low
+        again = [job + (bound,) for job in jobs
+                 if (key := (job[0].capacity_index, job[0].regularization_index)) in grid
+                 and grid[key].asymptote < bound]
+        for (info, *_), result in zip(again, _run_fits(again, n_jobs)):
+            if isinstance(result, CurveFit):
+                grid[(info.capacity_index, info.regularization_index)] = result
     return grid
+
+
+def _run_fits(jobs: list[tuple], n_jobs: int) -> list:
+    """Fit the settings of `jobs`, in this process or with joblib workers."""
+    if n_jobs == 1 or len(jobs) < 2:
+        return [_fit_one(*job) for job in jobs]
+    from joblib import Parallel, delayed
+    return Parallel(n_jobs=n_jobs)(delayed(_fit_one)(*job) for job in jobs)
 
 
 # --- summary ----------------------------------------------------------------------

@@ -281,23 +281,28 @@ class NoiseFloor:
 
 
 def estimate_noise_floor(curves: dict, confidence: float) -> NoiseFloor | None:
-    """Lowest asymptote upper band edge among settings whose asymptote is consistent with their data.
+    """The grid's noise floor: the shared floor of well-determined settings (curves.shared_floor).
 
-    A setting's asymptote is trusted when its band overlaps the bracket
-    [training error, validation error] at the largest measured size (the
-    curves' midpoint check); heavily regularised curves that are still
-    falling can otherwise extrapolate to a floor far below anything
-    measured.  Without any trusted setting, all settings are used.
+    Only settings whose asymptote band is narrow and consistent with their own
+    training/validation bracket count; curves still falling steeply can
+    extrapolate to a floor far below anything measured. When no setting is
+    well determined, the lowest asymptote upper band edge among settings that
+    agree with their bracket (or among all) is used, with its wide band.
     """
+    from gridplan.curves import shared_floor
     if not curves:
         return None
+    shared = getattr(curves, "floor", None) or shared_floor(curves, confidence)
+    if shared is not None:
+        return NoiseFloor(shared.value, shared.low, shared.high, shared.capacity_index,
+                          shared.regularization_index, shared.informative)
     trusted = {k: f for k, f in curves.items() if not f.midpoint_check(confidence)["disagree"]}
     pool = trusted or dict(curves)
     bands = {k: f.asymptote_band(confidence) for k, f in pool.items()}
     key = min(bands, key=lambda k: (bands[k][1], pool[k].asymptote, k))
     low, high = bands[key]
     return NoiseFloor(float(pool[key].asymptote), float(low), float(high), int(key[0]),
-                      int(key[1]), len(trusted))
+                      int(key[1]), 0)
 
 
 def diagnose_grid(cells: pd.DataFrame, curves: dict, *, target: float, n_test: float,
