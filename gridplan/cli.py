@@ -201,7 +201,10 @@ def demo(out: Path = typer.Option(Path("outputs/demo"), "--out", help="Folder fo
         api.run(spec.config, out=out / "run", jobs=jobs, progress=progress, spec=spec)
     cells = api.open_run(out / "run").cells()
     typer.echo(_demo_summary(cells, NOISE_FLOOR_MSE))
-    typer.echo(f"run folder: {out / 'run'}")
+    from gridplan.report import write_report
+    typer.echo("writing the report (fitting learning curves) ...", err=True)
+    path = write_report(out / "run", n_boot=60)
+    typer.echo(f"report: {path}")
 
 
 @app.command()
@@ -286,6 +289,21 @@ def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
 
 @app.command()
 @friendly
+def report(run_dir: Path = typer.Argument(..., help="Run folder."),
+           output: Optional[Path] = typer.Option(None, "-o", "--output", help="HTML file (default RUN_DIR/report.html)."),
+           target: Optional[float] = typer.Option(None, "--target", help="Target error (default: the config's)."),
+           at: Optional[str] = typer.Option(None, "--at", help="Operating point as CAPACITY,REG labels."),
+           confidence: Optional[float] = typer.Option(None, "--confidence"),
+           boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve.")):
+    """Write one self-contained HTML report: grid, curves, diagnosis, plan and cautions."""
+    from gridplan.report import write_report
+    typer.echo("writing the report (fitting learning curves) ...", err=True)
+    path = write_report(run_dir, output, target=target, confidence=confidence, at=at, n_boot=boot)
+    typer.echo(f"report written to {path}")
+
+
+@app.command()
+@friendly
 def backtest(config: Path = typer.Argument(..., help="TOML config file."),
              fraction: float = typer.Option(0.25, "--fraction", help="Share of the training fold the curves may see."),
              out: Optional[Path] = typer.Option(None, "--out", help="Run folder (default outputs/<name>-backtest)."),
@@ -303,6 +321,15 @@ def backtest(config: Path = typer.Argument(..., help="TOML config file."),
                           allow_any_estimator=allow_any_estimator,
                           progress=None if quiet else _stderr_progress())
     typer.echo(json.dumps(result, indent=2) if as_json else render_backtest(result))
+    _keep_backtest(api.default_run_dir(cfg), result)
+
+
+def _keep_backtest(run_dir: Path, result: dict) -> None:
+    """Store the backtest beside the main run so that its report can show it."""
+    import json
+    from gridplan.report import BACKTEST_FILE
+    if (run_dir / "store.sqlite").is_file():
+        (run_dir / BACKTEST_FILE).write_text(json.dumps(result, indent=2), encoding="utf-8")
 
 
 def _stderr_progress():

@@ -158,3 +158,13 @@ def test_curves_advise_and_heatmap_commands(tmp_path):
     assert (tmp_path / "gap.svg").read_text().lstrip().startswith("<?xml")
     result = runner.invoke(app, ["advise", str(run_dir), "--at", "9,9"])
     assert result.exit_code == 1 and "Traceback" not in result.output
+
+
+def test_report_command_writes_one_html_file(tmp_path):
+    run_dir = _quadratic_run(tmp_path)
+    result = runner.invoke(app, ["report", str(run_dir), "--boot", "20", "-o",
+                                 str(tmp_path / "r.html")])
+    assert result.exit_code == 0, result.output
+    text = (tmp_path / "r.html").read_text()
+    assert text.lstrip().lower().startswith("<!doctype html>")
+    assert "<script" not in text.lower() and "http://" not in text and "https://" not in text
