@@ -126,7 +126,10 @@ def cluster_threads(client: "Client", address: str) -> int:
 def check_workers_have_gridplan(client: "Client", address: str) -> None:
     """Refuse workers without gridplan, or with another version of it."""
     from importlib.metadata import PackageNotFoundError, version
-    mine = version("gridplan")
+    try:
+        mine = version("gridplan")
+    except PackageNotFoundError:   # running from a source tree: nothing to compare with
+        return
     found = client.run(version, "gridplan", on_error="return")
     for worker, theirs in sorted(found.items()):
         if isinstance(theirs, PackageNotFoundError):

@@ -222,6 +222,29 @@ def test_missing_dask_points_to_the_cluster_extra(tmp_path, monkeypatch):
             cluster.run_on_cluster(spec, store, "tcp://127.0.0.1:1")
 
 
+class _ClientReporting:
+    """Stands in for a dask client whose workers report given gridplan versions."""
+
+    def __init__(self, answers: dict):
+        self.answers = answers
+
+    def run(self, function, *args, on_error="raise"):
+        return self.answers
+
+
+def test_workers_without_gridplan_or_with_another_version_are_refused():
+    from importlib.metadata import PackageNotFoundError, version
+    mine = version("gridplan")
+    cluster.check_workers_have_gridplan(_ClientReporting({"tcp://127.0.0.1:1": mine}), "here")
+    with pytest.raises(GridplanError, match="tcp://127.0.0.1:2 has gridplan 0.0.1") as caught:
+        cluster.check_workers_have_gridplan(
+            _ClientReporting({"tcp://127.0.0.1:1": mine, "tcp://127.0.0.1:2": "0.0.1"}), "here")
+    assert f"this machine has {mine}" in str(caught.value)
+    missing = _ClientReporting({"tcp://127.0.0.1:3": PackageNotFoundError("gridplan")})
+    with pytest.raises(GridplanError, match="127.0.0.1:3 .* does not have gridplan installed"):
+        cluster.check_workers_have_gridplan(missing, "here")
+
+
 @pytest.mark.parametrize("tasks, threads, expected", [
     (0, 2, 1), (5, 2, 1), (9, 2, 2), (64, 2, 8), (600, 2, 32), (600, 64, 3), (10**6, 8, 32)])
 def test_chunk_size_gives_each_thread_several_chunks_of_bounded_size(tasks, threads, expected):
