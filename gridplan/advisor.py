@@ -217,7 +217,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
            confidence: float | None = None, per_sample: float | None = None,
            capacity_step: float | None = None, regularization_step: float | None = None,
            max_samples: int | None = None, less_capacity_step: float | None = None,
-           per_fit_second: float | None = None, thresholds: Thresholds = Thresholds(),
+           per_fit_second: float | None = None, thresholds: Thresholds | None = None,
            n_boot: int = 100, seed: int = 0, curves: GridCurves | None = None) -> dict:
     """Diagnose a run at the operating point and plan the cheapest way to the target.
 
@@ -228,6 +228,8 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     """
     run = open_run(run_dir)
     config = run.config
+    if thresholds is None:
+        thresholds = Thresholds(**(config.thresholds if config is not None else {}))
     target = _resolve_target(target, config)
     confidence = _resolve_confidence(confidence, config)
     costs = _cost_model(config, {"per_sample": per_sample, "capacity_step": capacity_step,

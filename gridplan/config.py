@@ -32,6 +32,8 @@ SCHEMA: dict[str, dict[str, str]] = {
     "costs": {"per_sample": "number", "capacity_step": "number",
               "regularization_step": "number", "max_samples": "int",
               "feature_groups": "table", "per_fit_second": "number"},
+    "diagnosis": {"floor_margin": "number", "min_share": "number", "alpha": "number",
+                  "flat_fraction": "number"},
     "run": {"jobs": "int", "scheduler": "str", "fit_time_limit": "number",
             "name": "str", "fast_path": "bool"},
 }
@@ -105,6 +107,7 @@ class Config:
     fit_time_limit: float | None
     name: str
     fast_path: bool = True
+    thresholds: dict[str, float] = field(default_factory=dict)
 
     @property
     def model_name(self) -> str:
@@ -278,6 +281,16 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     goal = _Reader(path, "goal", raw.get("goal", {}))
     costs = _Reader(path, "costs", raw.get("costs", {}))
     run = _Reader(path, "run", raw.get("run", {}))
+    diagnosis = _Reader(path, "diagnosis", raw.get("diagnosis", {}))
+    thresholds = {}
+    for key in SCHEMA["diagnosis"]:
+        value = diagnosis.get(key, "number")
+        if value is None:
+            continue
+        if value < 0 or (key in ("alpha", "min_share") and not 0 < value <= 1) or \
+                (key == "alpha" and value >= 1):
+            raise GridplanError(f"{diagnosis.where(key)} is out of range, got {value:g}.")
+        thresholds[key] = value
 
     data_path = data.get("path", "str", required=True)
     resolved_data = (path.parent / data_path).resolve()
@@ -394,7 +407,7 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         folds=folds, repeats=repeats, seed=seed, metric=metric,
         target_error=target_error, confidence=confidence, costs=cost_obj, jobs=jobs,
         scheduler=scheduler, fit_time_limit=limit, name=name,
-        fast_path=run.get("fast_path", "bool", default=True))
+        fast_path=run.get("fast_path", "bool", default=True), thresholds=thresholds)
 
 
 def _check_family_axis(where: str, family: str, axis: Axis) -> None:

@@ -171,3 +171,14 @@ def test_missing_values_can_be_imputed_on_request(tmp_path):
     from gridplan.api import open_run
     cells = open_run(tmp_path / "r").cells()
     assert (cells.status == "ok").all() and cells.validation_error.notna().all()
+
+
+def test_diagnosis_thresholds_are_read_and_checked(tmp_path):
+    from gridplan.config import load_config
+    linear_data(120, 2, 0.5, seed=0).to_csv(tmp_path / "data.csv", index=False)
+    sections = _with({})
+    sections["diagnosis"] = {"floor_margin": 0.1, "min_share": 0.3}
+    config = load_config(write_config(tmp_path, sections))
+    assert config.thresholds == {"floor_margin": 0.1, "min_share": 0.3}
+    sections["diagnosis"] = {"alpha": 1.5}
+    assert "[diagnosis] alpha is out of range" in _check(tmp_path, sections)

@@ -120,7 +120,8 @@ def _quadratic_run(tmp_path):
                   "regularization": {"values": [0.01, 1.0]}},
         "sizes": {"count": 6, "smallest": 10}, "resampling": {"folds": 4, "seed": 2},
         "goal": {"metric": "mse", "target": 0.3},
-        "costs": {"per_sample": 1.0, "capacity_step": 50.0, "max_samples": 5000}}, "q.toml")
+        "costs": {"per_sample": 1.0, "capacity_step": 50.0, "max_samples": 5000},
+        "diagnosis": {"min_share": 0.3}}, "q.toml")
     result = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "q"), "-q", "-j", "1"])
     assert result.exit_code == 0, result.output
     return tmp_path / "q"
@@ -142,6 +143,7 @@ def test_curves_advise_and_heatmap_commands(tmp_path):
     result = runner.invoke(app, ["advise", str(run_dir), "--json", "--boot", "30", "--at", "1,0.01"])
     assert result.exit_code == 0, result.output
     advice = json.loads(result.output)
+    assert advice["thresholds"]["min_share"] == 0.3     # from the config's [diagnosis]
     assert advice["verdict"] in {"high-bias", "high-variance", "both", "noise-floor", "fine"}
     for key in ["noise_floor", "reachable", "binding_limit", "plan", "actions"]:
         assert key in advice
