@@ -100,8 +100,10 @@ def test_cluster_table_equals_local_table(tmp_path, dask_cluster):
     pd.testing.assert_frame_equal(without_times(got), without_times(expected))
     assert (got.status == "ok").all() and (got.fit_seconds > 0).all()
     assert seen[-1] == (len(expected), len(expected))
-    # the workload was sent to each worker once, as one piece of data
-    assert held and sorted(held[0].values()) == [1, 1]
+    # the workload travels as one piece of data, never one copy per task: no
+    # worker holds more than one (a worker may not have received it yet when
+    # the first rows arrive)
+    assert held and max(held[0].values()) == 1 and sum(held[0].values()) >= 1
     # a second run finds every cell done and computes nothing
     spec = resolve(config)
     with prepare_run_dir(spec, tmp_path / "remote") as store:
