@@ -166,16 +166,20 @@ def _poly_ridge_grid(X_train, y_train, X_val, y_val, degrees, alphas, task, metr
 
     targets, decide = _ridge_targets(y_train, task)
     poly = PolynomialFeatures(max(degrees), include_bias=False).fit(X_train)
-    P_train, P_val = poly.transform(X_train), poly.transform(X_val)
-    # The scaler and Ridge's centring work column by column, so the centred,
-    # scaled design of every degree is the first columns of the largest one's,
-    # and so is its triangular factor (see _design_factor).
-    scaler = StandardScaler().fit(P_train)
-    S_train, S_val = scaler.transform(P_train), scaler.transform(P_val)
+    n_train = X_train.shape[0]
+    # Every step below works row by row or column by column, so transforming
+    # training and validation rows together, and the largest degree for all,
+    # gives bit for bit what the pipeline of each degree computes: the scaled
+    # degree-d design is the first columns of S, and the triangular factor of
+    # its centred version is the leading block of R (see _design_factor).
+    P = poly.transform(np.vstack([X_train, X_val]))
+    scaler = StandardScaler().fit(P[:n_train])
+    S = scaler.transform(P)
+    S_train, S_val = S[:n_train], S[n_train:]
     x_mean, y_mean = S_train.mean(axis=0), targets.mean(axis=0)
     C_train, C_val = S_train - x_mean, S_val - x_mean
     R = _design_factor(C_train, targets - y_mean)
-    data = _RidgeData(P_train, P_val, C_train, C_val, R, y_train, y_val, y_mean, decide)
+    data = _RidgeData(S_train, S_val, C_train, C_val, R, y_train, y_val, y_mean, decide)
 
     by_degree = {}
     for degree in sorted(set(degrees)):
@@ -188,8 +192,8 @@ def _poly_ridge_grid(X_train, y_train, X_val, y_val, degrees, alphas, task, metr
 class _RidgeData:
     """What every degree of one poly-ridge grid shares."""
 
-    P_train: np.ndarray      # polynomial features at the largest degree
-    P_val: np.ndarray
+    S_train: np.ndarray      # scaled polynomial features at the largest degree
+    S_val: np.ndarray
     C_train: np.ndarray      # scaled and centred as Ridge sees them
     C_val: np.ndarray
     R: np.ndarray            # triangular factor of [C_train | centred targets]
@@ -277,18 +281,15 @@ def _fallback_cells(data: _RidgeData, width: int, alphas: np.ndarray, task: str,
                     reasons: list[str]) -> list[FastCell]:
     """The plain pipeline for some alphas of one degree, fitted on the very arrays it would build.
 
-    The polynomial features of this degree are bit for bit the first columns of
-    the largest degree's, so scaling a contiguous copy of them and fitting
-    Ridge on the result repeats Pipeline.fit and Pipeline.predict exactly.
+    A contiguous copy of the first columns of the scaled largest-degree design
+    is bit for bit what the pipeline of this degree hands to Ridge, so fitting
+    Ridge on it repeats Pipeline.fit and Pipeline.predict exactly.
     """
     from sklearn.linear_model import Ridge, RidgeClassifier
-    from sklearn.preprocessing import StandardScaler
 
     cells = []
-    P_train = np.ascontiguousarray(data.P_train[:, :width])
-    scaler = StandardScaler().fit(P_train)
-    S_train = scaler.transform(P_train)
-    S_val = scaler.transform(np.ascontiguousarray(data.P_val[:, :width]))
+    S_train = np.ascontiguousarray(data.S_train[:, :width])
+    S_val = np.ascontiguousarray(data.S_val[:, :width])
     for alpha, why in zip(alphas, reasons):
         last = Ridge(alpha=alpha) if task == "regression" else RidgeClassifier(alpha=alpha)
         last.fit(S_train, data.y_train)
