@@ -170,3 +170,33 @@ def test_report_command_writes_one_html_file(tmp_path):
     text = (tmp_path / "r.html").read_text()
     assert text.lstrip().lower().startswith("<!doctype html>")
     assert "<script" not in text.lower() and "http://" not in text and "https://" not in text
+
+
+def test_feature_groups_are_priced_in_the_plan(tmp_path):
+    import json
+    rng = np.random.default_rng(3)
+    frame = pd.DataFrame({"temp": rng.normal(size=400), "humidity": rng.normal(size=400),
+                          "route": rng.choice(["r1", "r2", "r3"], size=400)})
+    frame["y"] = (2 * frame.temp + frame.humidity + (frame.route == "r2") * 1.5
+                  + rng.normal(scale=0.3, size=400))
+    frame.to_csv(tmp_path / "d.csv", index=False)
+    config = write_config(tmp_path, {
+        "data": {"path": "d.csv", "target": "y"},
+        "model": {"family": "poly-ridge", "params": {"degree": 1},
+                  "capacity": {"features": [["temp"], ["temp", "humidity"],
+                                            ["temp", "humidity", "route"]]},
+                  "regularization": {"values": [0.01]}},
+        "sizes": {"count": 5, "smallest": 20}, "resampling": {"folds": 4},
+        "goal": {"target": 0.2},
+        "costs": {"per_sample": 5.0, "capacity_step": 1.0,
+                  "feature_groups": {"+humidity": 70.0, "+route": 130.0}}})
+    assert runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "-q"]).exit_code == 0
+    result = runner.invoke(app, ["advise", str(tmp_path / "r"), "--at", "temp,0.01", "--json",
+                                 "--boot", "20"])
+    assert result.exit_code == 0, result.output
+    advice = json.loads(result.output)
+    # every group carries real signal (known data model): both must be bought,
+    # each at its own price, and no amount of data replaces them
+    assert [s["action"] for s in advice["plan"]] == ["more-capacity", "more-capacity"]
+    assert [s["cost"] for s in advice["plan"]] == [70.0, 130.0]
+    assert advice["plan_cost"] == 200.0
