@@ -717,10 +717,10 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
     # When the converged settings' floor sits above another setting's
     # measurement they are biased, and the data do not pin the floor down.
     measured = [(float(f.validation_mean[-1]), float(f.validation_se[-1])) for f in fits.values()]
-    if value > min(m + se for m, se in measured):
+    ceiling = min(m + 2.0 * se for m, se in measured)
+    if value > ceiling:
         return None
-    high = min(high, min(m + se for m, se in measured))
-    low = min(low, min(m - 2.0 * se for m, se in measured))
+    high = min(high, ceiling)
     return SharedFloor(float(value), float(max(low, 0.0)), float(high), int(key[0]),
                        int(key[1]), len(informative))
 
