@@ -201,10 +201,33 @@ def demo(out: Path = typer.Option(Path("outputs/demo"), "--out", help="Folder fo
         api.run(spec.config, out=out / "run", jobs=jobs, progress=progress, spec=spec)
     cells = api.open_run(out / "run").cells()
     typer.echo(_demo_summary(cells, NOISE_FLOOR_MSE))
-    from gridplan.report import write_report
-    typer.echo("writing the report (fitting learning curves) ...", err=True)
-    path = write_report(out / "run", n_boot=60)
+    from gridplan.report import REPORT_NAME, gather_inputs, write_inputs
+    typer.echo("fitting learning curves and writing the report ...", err=True)
+    inputs = gather_inputs(out / "run", n_boot=60)
+    path = write_inputs(inputs, out / "run" / REPORT_NAME)
+    if inputs.advice is not None:
+        typer.echo(_advice_summary(inputs.advice))
     typer.echo(f"report: {path}")
+
+
+def _advice_summary(advice: dict) -> str:
+    """Two lines: the verdict and the cheapest plan."""
+    lines = [f"verdict: {advice['verdict']} (target {advice['target']:g})"]
+    if advice.get("reachable") and advice.get("plan"):
+        steps = ", ".join(_step_words(step) for step in advice["plan"])
+        lines.append(f"cheapest plan, cost {advice['plan_cost']:,.0f}: {steps}")
+    elif advice.get("reachable"):
+        lines.append("no change needed: the operating point meets the target")
+    else:
+        lines.append(f"no plan reaches the target; binding limit: {advice.get('binding_limit')}")
+    return "\n".join(lines)
+
+
+def _step_words(step: dict) -> str:
+    target = step.get("to") or {}
+    if step["action"] == "more-data" and isinstance(target, dict) and "size" in target:
+        return f"more-data to {target['size']:,} rows"
+    return step["action"]
 
 
 @app.command()

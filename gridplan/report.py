@@ -956,8 +956,13 @@ def write_report(run_dir: str | Path, out: str | Path | None = None, *,
     if not (run_dir / STORE_NAME).is_file():
         raise GridplanError(f"{run_dir} is not a gridplan run folder (no {STORE_NAME}).")
     path = _writable_target(run_dir, out)
-    text = report_html(gather_inputs(run_dir, target=target, confidence=confidence, at=at,
-                                     n_boot=n_boot, seed=seed))
+    return write_inputs(gather_inputs(run_dir, target=target, confidence=confidence, at=at,
+                                      n_boot=n_boot, seed=seed), path)
+
+
+def write_inputs(inputs: ReportInputs, path: Path) -> Path:
+    """Render gathered inputs and replace `path` with the page in one step."""
+    text = report_html(inputs)
     temporary = None
     try:
         handle, temporary = tempfile.mkstemp(prefix=".report-", suffix=".html", dir=path.parent)
