@@ -26,11 +26,10 @@ from gridplan.diagnosis import (
     estimate_noise_floor,
 )
 from gridplan.errors import GridplanError
+from gridplan.jsonable import plain as _plain
 from gridplan.planner import (
-    ACTIONS,
     CostModel,
     State,
-    StateGraph,
     build_state_graph,
     cheapest_plan,
     costs_to_goal,
@@ -38,21 +37,6 @@ from gridplan.planner import (
     size_ladder,
     state_error_forecasts,
 )
-
-
-def _plain(value):
-    """numpy scalars and non-finite floats -> JSON-friendly values."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return float(value) if math.isfinite(value) else None
-    return value
 
 
 # --- reading the user's choices ---------------------------------------------------------

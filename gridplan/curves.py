@@ -33,6 +33,7 @@ import numpy as np
 import pandas as pd
 
 from gridplan.errors import GridplanError
+from gridplan.jsonable import plain as _plain
 
 # --- documented thresholds -------------------------------------------------
 
@@ -817,21 +818,6 @@ def _run_fits(jobs: list[tuple], n_jobs: int) -> list:
 
 
 # --- summary ----------------------------------------------------------------------
-
-def _plain(value):
-    """Convert numpy scalars / non-finite floats into JSON-friendly Python values."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, (np.bool_, bool)):
-        return bool(value)
-    if isinstance(value, (np.integer, int)):
-        return int(value)
-    if isinstance(value, (np.floating, float)):
-        return float(value) if math.isfinite(value) else None
-    return value
-
 
 def _setting_summary(fit: CurveFit, target: float | None, confidence: float,
                      current_size: float | None, max_size: float) -> dict:

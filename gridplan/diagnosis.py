@@ -35,6 +35,7 @@ from scipy import stats
 
 from gridplan.curves import CurveFit
 from gridplan.errors import GridplanError
+from gridplan.jsonable import plain as _plain
 
 VERDICTS = ("high-bias", "high-variance", "both", "noise-floor", "fine")
 
@@ -148,20 +149,6 @@ class SettingDiagnosis:
 
     def as_dict(self) -> dict:
         return _plain(asdict(self))
-
-
-def _plain(value):
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return float(value) if math.isfinite(value) else None
-    return value
 
 
 def _unit_errors(rows: pd.DataFrame, column: str) -> pd.Series:
