@@ -179,8 +179,9 @@ def test_interrupted_run_resumes_to_the_uninterrupted_table(tmp_path):
     assert (kept.fit_seconds == kept.fit_seconds_before).all()
 
 
-def test_parallel_and_sequential_runs_are_identical(tmp_path):
+def test_parallel_and_sequential_runs_are_identical(tmp_path, monkeypatch):
     # Common practice, no published source: the worker count must not change numbers.
+    monkeypatch.setattr("gridplan.runner.LOCAL_ONLY_SECONDS", 0.0)   # force the worker pool
     config = _resume_config(tmp_path)
     api.run(config, out=tmp_path / "one", jobs=1)
     api.run(config, out=tmp_path / "two", jobs=2)
