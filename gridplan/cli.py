@@ -105,7 +105,7 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
     seconds, line = _estimate_line(spec, api.effective_jobs(spec.config, jobs))
     if not quiet:
         typer.echo(line)
-    if seconds > CONFIRM_ABOVE_SECONDS and not yes and sys.stdin.isatty():
+    if seconds > CONFIRM_ABOVE_SECONDS and not yes and _on_terminal():
         if not typer.confirm("This grid will run for a long time. Start it?", default=False):
             _fail("not started.", code=1)
     with _progress_bar(spec, quiet) as progress:
@@ -118,6 +118,11 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
 
 
 CONFIRM_ABOVE_SECONDS = 30 * 60
+
+
+def _on_terminal() -> bool:
+    """True when a person can answer a prompt."""
+    return sys.stdin.isatty()
 
 
 def _duration(seconds: float) -> str:

@@ -200,3 +200,19 @@ def test_feature_groups_are_priced_in_the_plan(tmp_path):
     assert [s["action"] for s in advice["plan"]] == ["more-capacity", "more-capacity"]
     assert [s["cost"] for s in advice["plan"]] == [70.0, 130.0]
     assert advice["plan_cost"] == 200.0
+
+
+def test_long_grid_asks_before_starting(tmp_path, monkeypatch):
+    import gridplan.cli as cli
+    config = _small_config(tmp_path)
+    monkeypatch.setattr(cli, "CONFIRM_ABOVE_SECONDS", 0.0)   # every grid counts as long
+    monkeypatch.setattr(cli, "_on_terminal", lambda: True)
+    refused = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r")], input="n\n")
+    assert refused.exit_code == 1 and "Start it?" in refused.output
+    assert "estimate" in refused.output and "36 fits" in refused.output
+    assert not (tmp_path / "r" / "store.sqlite").exists()
+    accepted = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "-q"],
+                             input="y\n")
+    assert accepted.exit_code == 0 and "36 fits stored" in accepted.output
+    skipped = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r2"), "--yes", "-q"])
+    assert skipped.exit_code == 0 and "Start it?" not in skipped.output
