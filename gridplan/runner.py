@@ -12,7 +12,7 @@ import signal
 import threading
 import time
 import warnings
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass
 from typing import Callable, Iterator
 
@@ -118,13 +118,44 @@ def build_tasks(spec: GridSpec, done: set[tuple[int, int, int, int, int]]) -> li
 _CONTROLLER = None
 
 
+_LIMITED_BY_CALLER = False   # True while worker threads run under one process-wide limit
+
+
 def _one_blas_thread():
-    """A context that limits BLAS/OpenMP to one thread (the same numbers on any worker)."""
+    """A context that limits BLAS/OpenMP to one thread (the same numbers on any worker).
+
+    The limit is process-wide, so worker threads must not each set and restore
+    it: while they run, the calling thread holds one limit for all of them.
+    """
     global _CONTROLLER
     from threadpoolctl import ThreadpoolController
+    if _LIMITED_BY_CALLER:
+        return nullcontext()
     if _CONTROLLER is None:
         _CONTROLLER = ThreadpoolController()
     return _CONTROLLER.limit(limits=1)
+
+
+FAST_KINDS = ("ridge-path", "tree-path")
+
+
+def _in_threads(tasks: list[Task], work: Workload, jobs: int) -> Iterator[list[FoldRow]]:
+    """Run fast-path tasks on `jobs` threads of this process.
+
+    Their time goes to LAPACK and compiled tree code, which release the GIL,
+    and threads start at once, whereas each worker process first spends about
+    a second and a half importing scikit-learn.
+    """
+    global _LIMITED_BY_CALLER
+    from joblib import Parallel, delayed
+    with _one_blas_thread():
+        _LIMITED_BY_CALLER = True
+        try:
+            parallel = Parallel(n_jobs=jobs, backend="threading",
+                                return_as="generator_unordered", batch_size=1)
+            yield from parallel(delayed(run_task)(task, work) for task in tasks)
+        finally:
+            _LIMITED_BY_CALLER = False
 
 
 class FitTimeout(Exception):
@@ -313,6 +344,9 @@ def execute(tasks: list[Task], work: Workload, *, jobs: int = 1, backend: str | 
     if jobs == 1 and backend is None:
         for task in tasks:
             yield run_task(task, work)
+        return
+    if backend is None and tasks and all(t.kind in FAST_KINDS for t in tasks):
+        yield from _in_threads(list(tasks), work, jobs)
         return
     if backend is None:
         tasks = yield from _head_start(list(tasks), work)

@@ -235,3 +235,21 @@ def test_fast_path_is_chosen_only_where_it_is_exact(tmp_path):
                  "capacity": {"values": [1, 2]}}) is None
     assert kind({"estimator": "sklearn.linear_model.Ridge",
                  "capacity": {"param": "alpha", "values": [1.0]}}) is None
+
+
+def test_fast_path_on_threads_equals_one_thread(tmp_path):
+    # Common practice, no published source: fast-path tasks run on threads of
+    # one process under one BLAS thread each; the numbers must not change.
+    frame = linear_data(400, 3, 0.5, seed=12)
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    config = load_config(write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2, 3, 4]},
+                  "regularization": {"values": [1e-4, 0.1, 10.0]}},
+        "sizes": {"count": 5, "smallest": 20}, "resampling": {"folds": 4, "repeats": 2}}))
+    api.run(config, out=tmp_path / "one", jobs=1)
+    api.run(config, out=tmp_path / "two", jobs=2)
+    one = api.open_run(tmp_path / "one").cells()
+    two = api.open_run(tmp_path / "two").cells()
+    assert set(two.path) <= {"svd", "plain-fallback"}
+    pd.testing.assert_frame_equal(without_times(one), without_times(two))
