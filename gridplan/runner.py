@@ -136,11 +136,11 @@ def _one_blas_thread():
     return _CONTROLLER.limit(limits=1)
 
 
-FAST_KINDS = ("ridge-path", "tree-path")
+THREADED_KINDS = ("ridge-path",)   # tree-path tasks are too small to gain from threads
 
 
 def _in_threads(tasks: list[Task], work: Workload, jobs: int) -> Iterator[list[FoldRow]]:
-    """Run fast-path tasks on `jobs` threads of this process.
+    """Run ridge fast-path tasks on `jobs` threads of this process.
 
     Their time goes to LAPACK and compiled tree code, which release the GIL,
     and threads start at once, whereas each worker process first spends about
@@ -345,7 +345,7 @@ def execute(tasks: list[Task], work: Workload, *, jobs: int = 1, backend: str | 
         for task in tasks:
             yield run_task(task, work)
         return
-    if backend is None and tasks and all(t.kind in FAST_KINDS for t in tasks):
+    if backend is None and tasks and all(t.kind in THREADED_KINDS for t in tasks):
         yield from _in_threads(list(tasks), work, jobs)
         return
     if backend is None:
