@@ -71,20 +71,46 @@ def run_on_cluster(spec: GridSpec, store: Store, address: str, *,
         if chunk is None:
             pending = len(build_tasks(spec, store.finished_keys()))
             chunk = chunk_size(pending, threads)
-        try:
-            return run_grid(spec, store, jobs=-1, backend=BACKEND_NAME,
-                            backend_options={"client": client}, chunk=chunk,
-                            progress=progress)
-        except Exception as exc:
-            problem = _cluster_problem(exc, address)
-            if problem is None:
-                raise
-            remaining = spec.n_fits - len(store.finished_keys())
-            raise GridplanError(
-                f"{problem}; {remaining} of {spec.n_fits} fits are still to do and every "
-                f"finished one is saved, so rerun the same command to compute the rest.") from None
+        written = 0
+        for attempt in range(1 + LOST_DATA_RETRIES):
+            try:
+                return written + run_grid(spec, store, jobs=-1, backend=BACKEND_NAME,
+                                          backend_options={"client": client}, chunk=chunk,
+                                          progress=progress)
+            except Exception as exc:
+                problem = _cluster_problem(exc, address)
+                if problem is None:
+                    raise
+                if _lost_scattered_data(exc, client) and attempt < LOST_DATA_RETRIES:
+                    continue   # a dead worker took the data with it: send it again, go on
+                remaining = spec.n_fits - len(store.finished_keys())
+                raise GridplanError(
+                    f"{problem}; {remaining} of {spec.n_fits} fits are still to do and every "
+                    f"finished one is saved, so rerun the same command to compute the rest.") from None
+        return written
     finally:
         client.close()
+
+
+#: How often a run resends its data after a dying worker took the only copy.
+LOST_DATA_RETRIES = 2
+
+
+def _lost_scattered_data(exc: Exception, client: "Client") -> bool:
+    """True when futures were cancelled while the scheduler still answers.
+
+    A worker that dies holding the only copy of the scattered workload makes
+    dask cancel every task that needs it; the scheduler itself is fine, so the
+    unfinished cells can simply be sent again with a fresh copy.
+    """
+    from concurrent.futures import CancelledError
+    if not isinstance(exc, CancelledError):
+        return False
+    try:
+        client.scheduler_info()
+    except Exception:
+        return False
+    return client.status == "running"
 
 
 def _require_dask() -> None:
@@ -161,7 +187,10 @@ def _cluster_problem(exc: Exception, address: str) -> str | None:
         last = getattr(exc.last_worker, "address", exc.last_worker)
         return (f"dask workers kept dying while running one batch of cells (it was tried on "
                 f"{tries} worker{'s' if tries > 1 else ''}, the last at {last})")
-    if isinstance(exc, (CancelledError, CommClosedError, OSError)):
+    if isinstance(exc, CancelledError):
+        return (f"the cluster at {address} cancelled the run's tasks (the scheduler went away, "
+                f"or workers kept dying with the grid's data)")
+    if isinstance(exc, (CommClosedError, OSError)):
         return f"the run lost its dask scheduler at {address} ({type(exc).__name__})"
     if isinstance(exc, ImportError):
         return (f"a dask worker could not import what the grid needs ({exc}); install the "
