@@ -145,7 +145,7 @@ class _progress_bar:
     """A rich progress bar fed by the runner's (done, total) callback."""
 
     def __init__(self, spec, quiet: bool):
-        self.quiet = quiet or not sys.stderr.isatty() and False
+        self.quiet = quiet
         self.folds = len(spec.folds)
         self.cells = spec.n_cells
         self.bar = None

@@ -64,6 +64,7 @@ from gridplan.metrics import (
     CLASSIFICATION_METRICS,
     REGRESSION_METRICS,
     error_of,
+    errors_by_row,
     proba_for_labels,
 )
 
@@ -225,7 +226,7 @@ def _design_factor(C: np.ndarray, Yc: np.ndarray) -> np.ndarray:
 def _one_degree(data: _RidgeData, width: int, alphas: np.ndarray, task: str,
                 metric: str) -> list[FastCell]:
     """All alphas of one degree from one SVD of its triangular factor."""
-    n_rows, n_targets = data.C_train.shape[0], data.y_mean.size
+    n_rows = data.C_train.shape[0]
     n_cols = data.C_train.shape[1]
     m = min(n_rows, width)
     try:
@@ -439,23 +440,6 @@ def _tree_params_problem(params: dict) -> str | None:
 
 
 # ------------------------------------------------------------------- helpers
-
-def errors_by_row(metric: str, y_true: np.ndarray, predictions: np.ndarray) -> np.ndarray:
-    """The error of each row of `predictions` (one prediction per column) against y_true.
-
-    The formulas of gridplan.metrics.error_of for mse, rmse, mae and
-    error_rate, in plain numpy: the fast paths score hundreds of predictions
-    per task, and scikit-learn's input checks would cost more than the fits.
-    """
-    if metric in ("mse", "rmse"):
-        mse = np.mean((y_true - predictions) ** 2, axis=1)
-        return mse if metric == "mse" else np.sqrt(mse)
-    if metric == "mae":
-        return np.mean(np.abs(y_true - predictions), axis=1)
-    if metric == "error_rate":
-        return 1.0 - np.mean(predictions == y_true, axis=1)
-    raise ValueError(f"metric {metric!r} needs probabilities, not predictions")
-
 
 def _as_design(X, name: str, allow_nan: bool = False) -> np.ndarray:
     X = np.asarray(X, dtype=float)

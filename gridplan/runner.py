@@ -51,7 +51,7 @@ class Task:
 class Workload:
     """What every task needs; sent to workers once per batch (or once per cluster)."""
 
-    X: object                # pandas DataFrame of features
+    X: object                # DataFrame, or a float array when no encoding is needed
     y: np.ndarray
     labels: np.ndarray | None
     plan: ModelPlan
@@ -116,8 +116,6 @@ def build_tasks(spec: GridSpec, done: set[tuple[int, int, int, int, int]]) -> li
 
 
 _CONTROLLER = None
-
-
 _LIMITED_BY_CALLER = False   # True while worker threads run under one process-wide limit
 
 
