@@ -56,18 +56,25 @@ def test_run_then_export_has_the_contract_columns(tmp_path):
     assert "36 fits stored" in again.output
 
 
-def test_feature_set_capacity_axis(tmp_path):
+FEATURE_SETS = [["temp"], ["temp", "humidity"], ["temp", "humidity", "route"]]
+
+
+def _write_feature_data(tmp_path, n: int) -> None:
+    """Three groups of inputs, each carrying real signal, plus N(0, 0.09) noise."""
     rng = np.random.default_rng(3)
-    frame = pd.DataFrame({"temp": rng.normal(size=300), "humidity": rng.normal(size=300),
-                          "route": rng.choice(["r1", "r2", "r3"], size=300)})
+    frame = pd.DataFrame({"temp": rng.normal(size=n), "humidity": rng.normal(size=n),
+                          "route": rng.choice(["r1", "r2", "r3"], size=n)})
     frame["y"] = (2 * frame.temp + frame.humidity + (frame.route == "r2") * 1.5
-                  + rng.normal(scale=0.3, size=300))
+                  + rng.normal(scale=0.3, size=n))
     frame.to_csv(tmp_path / "d.csv", index=False)
+
+
+def test_feature_set_capacity_axis(tmp_path):
+    _write_feature_data(tmp_path, 300)
     config = write_config(tmp_path, {
         "data": {"path": "d.csv", "target": "y"},
         "model": {"family": "poly-ridge", "params": {"degree": 1},
-                  "capacity": {"features": [["temp"], ["temp", "humidity"],
-                                            ["temp", "humidity", "route"]]},
+                  "capacity": {"features": FEATURE_SETS},
                   "regularization": {"values": [0.01]}},
         "sizes": {"values": [50, 200]}, "resampling": {"folds": 3}})
     result = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "-q", "-j", "1"])
@@ -174,17 +181,11 @@ def test_report_command_writes_one_html_file(tmp_path):
 
 def test_feature_groups_are_priced_in_the_plan(tmp_path):
     import json
-    rng = np.random.default_rng(3)
-    frame = pd.DataFrame({"temp": rng.normal(size=400), "humidity": rng.normal(size=400),
-                          "route": rng.choice(["r1", "r2", "r3"], size=400)})
-    frame["y"] = (2 * frame.temp + frame.humidity + (frame.route == "r2") * 1.5
-                  + rng.normal(scale=0.3, size=400))
-    frame.to_csv(tmp_path / "d.csv", index=False)
+    _write_feature_data(tmp_path, 400)
     config = write_config(tmp_path, {
         "data": {"path": "d.csv", "target": "y"},
         "model": {"family": "poly-ridge", "params": {"degree": 1},
-                  "capacity": {"features": [["temp"], ["temp", "humidity"],
-                                            ["temp", "humidity", "route"]]},
+                  "capacity": {"features": FEATURE_SETS},
                   "regularization": {"values": [0.01]}},
         "sizes": {"count": 5, "smallest": 20}, "resampling": {"folds": 4},
         "goal": {"target": 0.2},
