@@ -102,7 +102,8 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
     run_dir = out or api.default_run_dir(spec.config)
     if not quiet:
         typer.echo(_describe(spec, run_dir))
-    seconds, line = _estimate_line(spec, api.effective_jobs(spec.config, jobs))
+    seconds, line = _estimate_line(spec, api.effective_jobs(spec.config, jobs),
+                                   _finished_keys(run_dir))
     if not quiet:
         typer.echo(line)
     if seconds > CONFIRM_ABOVE_SECONDS and not yes and _on_terminal():
@@ -133,12 +134,23 @@ def _duration(seconds: float) -> str:
     return f"{seconds / 3600:.1f} h"
 
 
-def _estimate_line(spec, jobs: int) -> tuple[float, str]:
-    """Time one task at the largest size and scale it to the grid."""
+def _estimate_line(spec, jobs: int, done: set | None = None) -> tuple[float, str]:
+    """Time one unfinished task at the largest size and scale it to the rest."""
     from gridplan.runner import estimate_seconds
-    seconds, probe = estimate_seconds(spec, jobs)
+    seconds, probe = estimate_seconds(spec, jobs, done)
+    if probe == 0.0:
+        return 0.0, f"{'estimate'.ljust(14)}  nothing left to run: every fit is stored"
     return seconds, (f"{'estimate'.ljust(14)}  about {_duration(seconds)} with {jobs} worker"
                      f"{'s' if jobs > 1 else ''} (one task at the largest size took {probe:.2f} s)")
+
+
+def _finished_keys(run_dir: Path) -> set:
+    """Fits an earlier run in this folder already stored (none for a new folder)."""
+    from gridplan.store import STORE_NAME, Store
+    if not (Path(run_dir) / STORE_NAME).is_file():
+        return set()
+    with Store.open_existing(run_dir) as store:
+        return store.finished_keys()
 
 
 class _progress_bar:

@@ -399,15 +399,19 @@ def run_grid(spec: GridSpec, store: Store, *, jobs: int = 1, backend: str | None
     return written
 
 
-def estimate_seconds(spec: GridSpec, jobs: int) -> tuple[float, float]:
-    """Rough wall time of the whole grid from one timed task at the largest size.
+def estimate_seconds(spec: GridSpec, jobs: int,
+                     done: set[tuple[int, int, int, int, int]] | None = None) -> tuple[float, float]:
+    """Rough wall time of the unfinished grid from one timed task at the largest size.
 
-    Returns (estimate, probe seconds). Work is taken as proportional to the
-    training size, which holds roughly for the built-in families.
+    Returns (estimate, probe seconds); (0, 0) when nothing is left to run. Work
+    is taken as proportional to the training size, which holds roughly for the
+    built-in families.
     """
-    tasks = build_tasks(spec, set())
-    largest = len(spec.sizes) - 1
-    probe = max((t for t in tasks if t.size_index == largest and t.fold_index == 0),
+    tasks = build_tasks(spec, done or set())
+    if not tasks:
+        return 0.0, 0.0
+    largest = max(t.size_index for t in tasks)
+    probe = max((t for t in tasks if t.size_index == largest),
                 key=lambda t: (max(t.capacity_indices), -min(t.regularization_indices)))
     started = time.perf_counter()
     run_task(probe, workload_of(spec))

@@ -54,6 +54,9 @@ def test_run_then_export_has_the_contract_columns(tmp_path):
     again = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "--yes", "-q"])
     assert again.exit_code == 0
     assert "36 fits stored" in again.output
+    # the time estimate of a finished run fits nothing
+    told = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "--yes"])
+    assert told.exit_code == 0 and "nothing left to run" in told.output
 
 
 FEATURE_SETS = [["temp"], ["temp", "humidity"], ["temp", "humidity", "route"]]
