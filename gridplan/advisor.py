@@ -9,6 +9,7 @@ terminal text.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from pathlib import Path
 
@@ -16,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from gridplan.api import open_run
+from gridplan.config import Costs
 from gridplan.curves import DEFAULT_MAX_SIZE, GridCurves, fit_grid
 from gridplan.diagnosis import (
     NoiseFloor,
@@ -57,19 +59,10 @@ def parse_operating_point(at: str, capacity_labels: list[str],
 
 
 def _cost_model(config, overrides: dict) -> CostModel:
-    base = config.costs if config is not None else None
-    values = {
-        "per_sample": base.per_sample if base else 1.0,
-        "capacity_step": base.capacity_step if base else 100.0,
-        "regularization_step": base.regularization_step if base else 1.0,
-        "per_fit_second": base.per_fit_second if base else 0.0,
-        "max_samples": base.max_samples if base else None,
-        "feature_groups": dict(base.feature_groups) if base else {},
-        "less_capacity_step": None,
-    }
-    for key, value in overrides.items():
-        if value is not None:
-            values[key] = value
+    """The config's costs (its defaults without a config), with the given overrides."""
+    base = config.costs if config is not None else Costs()
+    values = {**dataclasses.asdict(base), "less_capacity_step": None}
+    values.update({key: value for key, value in overrides.items() if value is not None})
     return CostModel(**values)
 
 
