@@ -59,6 +59,9 @@ class Workload:
     sizes: tuple[int, ...]
     metric: str
     fit_time_limit: float | None = None
+    #: Polynomial features of every row of X at the largest degree, built once
+    #: for ridge fast-path tasks that share this process (see with_shared_features).
+    poly_features: np.ndarray | None = None
 
 
 def workload_of(spec: GridSpec) -> Workload:
@@ -135,6 +138,23 @@ def _one_blas_thread():
 
 
 THREADED_KINDS = ("ridge-path",)   # tree-path tasks are too small to gain from threads
+
+
+def with_shared_features(tasks: list[Task], work: Workload) -> Workload:
+    """The workload with its rows' polynomial features built once, when ridge tasks can share them.
+
+    Only for tasks run in this process (threads or one by one): the features
+    are as large as the largest task's, and worth sending nowhere.
+    """
+    plan = work.plan
+    shareable = (tasks and all(t.kind == "ridge-path" for t in tasks) and plan.feature_sets is None
+                 and isinstance(work.X, np.ndarray))
+    if not shareable or work.poly_features is not None:
+        return work
+    from dataclasses import replace
+    from gridplan.fastpaths import polynomial_features
+    top = max(int(plan.capacity_values[ci]) for t in tasks for ci in t.capacity_indices)
+    return replace(work, poly_features=polynomial_features(work.X, top))
 
 
 def _in_threads(tasks: list[Task], work: Workload, jobs: int) -> Iterator[list[FoldRow]]:
@@ -276,8 +296,11 @@ def _ridge_path(task: Task, work: Workload, fold, size: int) -> dict:
         degrees = [int(plan.params.get("degree", 1))]
     alphas = [float(plan.regularization_values[ri]) if plan.regularization_param
               else float(plan.params.get("alpha", 1.0)) for ri in task.regularization_indices]
+    features = None
+    if work.poly_features is not None:
+        features = (work.poly_features[fold.train[:size]], work.poly_features[fold.test])
     grid = poly_ridge_grid(Z_fit, y_fit, Z_val, y_val, degrees, alphas, task=plan.task,
-                           metric=work.metric, labels=work.labels)
+                           metric=work.metric, labels=work.labels, features=features)
     out = {}
     for i, ci in enumerate(task.capacity_indices):
         row = grid[i] if plan.feature_sets is None else grid[0]
@@ -340,11 +363,12 @@ def execute(tasks: list[Task], work: Workload, *, jobs: int = 1, backend: str | 
     `backend="dask"` sends the same work to a dask cluster (see gridplan.cluster).
     """
     if jobs == 1 and backend is None:
+        work = with_shared_features(tasks, work)
         for task in tasks:
             yield run_task(task, work)
         return
     if backend is None and tasks and all(t.kind in THREADED_KINDS for t in tasks):
-        yield from _in_threads(list(tasks), work, jobs)
+        yield from _in_threads(list(tasks), with_shared_features(tasks, work), jobs)
         return
     if backend is None:
         tasks = yield from _head_start(list(tasks), work)

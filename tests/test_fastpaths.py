@@ -139,6 +139,40 @@ def test_decision_on_a_tie_falls_back():
     assert (cell.train_error, cell.validation_error) == ref == (0.0, 0.5)
 
 
+def test_fallback_on_ill_conditioned_classification_equals_ridge_classifier():
+    # reference library: scikit-learn Pipeline with RidgeClassifier; the fallback repeats its
+    # arithmetic (unit sample weights, +-1 columns), so the errors agree exactly
+    rng = np.random.default_rng(8)
+    for n_classes in (2, 3):
+        X_train, y_train, X_val, y_val = classification_data(n_classes, n_train=40, n_val=60, seed=n_classes)
+        X_train = np.hstack([X_train, X_train[:, :1] + 1e-7 * rng.normal(size=(40, 1))])
+        X_val = np.hstack([X_val, X_val[:, :1] + 1e-7 * rng.normal(size=(60, 1))])
+        degrees, alphas = [4, 6], [1e-6, 1e-3]
+        grid = poly_ridge_grid(X_train, y_train, X_val, y_val, degrees, alphas,
+                               task="classification", metric="error_rate")
+        fallbacks = [(d, a, c) for d, row in zip(degrees, grid) for a, c in zip(alphas, row)
+                     if c.path == "plain-fallback"]
+        assert fallbacks
+        for degree, alpha, cell in fallbacks:
+            ref = plain_poly_ridge(X_train, y_train, X_val, y_val, degree, alpha, "classification", "error_rate")
+            assert (cell.train_error, cell.validation_error) == ref
+
+
+def test_features_built_once_give_the_same_cells():
+    # reference library: scikit-learn PolynomialFeatures works row by row, so the rows of the
+    # features of all rows equal the features of those rows
+    X_train, y_train, X_val, y_val = regression_data()
+    everything = fastpaths.polynomial_features(np.vstack([X_train, X_val]), 7)
+    shared = (everything[:len(X_train)], everything[len(X_train):])
+    own = poly_ridge_grid(X_train, y_train, X_val, y_val, [2, 5], ALPHAS, task="regression", metric="mse")
+    given = poly_ridge_grid(X_train, y_train, X_val, y_val, [2, 5], ALPHAS, task="regression", metric="mse",
+                            features=shared)
+    assert own == given
+    with pytest.raises(ValueError, match="polynomial columns"):
+        poly_ridge_grid(X_train, y_train, X_val, y_val, [2, 5], ALPHAS, task="regression", metric="mse",
+                        features=(shared[0][:, :9], shared[1][:, :9]))
+
+
 def test_single_class_training_subset():
     # reference library: scikit-learn RidgeClassifier on a training subset that holds one class
     X_train, y_train, X_val, y_val = classification_data(3)

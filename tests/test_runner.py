@@ -253,3 +253,24 @@ def test_fast_path_on_threads_equals_one_thread(tmp_path):
     two = api.open_run(tmp_path / "two").cells()
     assert set(two.path) <= {"svd", "plain-fallback"}
     pd.testing.assert_frame_equal(without_times(one), without_times(two))
+
+
+def test_shared_polynomial_features_change_no_number(tmp_path):
+    # reference library: scikit-learn PolynomialFeatures works row by row; tasks that take their
+    # rows from features built once for all rows must give the numbers they give alone
+    from gridplan import runner
+    frame = linear_data(300, 3, 0.5, seed=4)
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    spec = resolve(load_config(write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 3, 6]},
+                  "regularization": {"values": [1e-6, 0.1, 10.0]}},
+        "sizes": {"count": 4, "smallest": 20}, "resampling": {"folds": 3}})))
+    work = runner.workload_of(spec)
+    tasks = runner.build_tasks(spec, set())
+    shared = runner.with_shared_features(tasks, work)
+    assert work.poly_features is None and shared.poly_features.shape == (300, 83)
+    for task in tasks:
+        alone, together = runner.run_task(task, work), runner.run_task(task, shared)
+        assert [(r.train_error, r.validation_error, r.path) for r in alone] == \
+            [(r.train_error, r.validation_error, r.path) for r in together]
