@@ -199,7 +199,8 @@ def _poly_ridge_grid(P_train, y_train, P_val, y_val, n_inputs, degrees, alphas, 
     # centred version is the leading block of R (see _design_factor).
     P = np.vstack([P_train, P_val])
     scaler = StandardScaler().fit(P[:n_train])
-    S = scaler.transform(P)
+    S = P - scaler.mean_            # StandardScaler.transform's two steps, without its checks
+    S /= scaler.scale_
     S_train, S_val = S[:n_train], S[n_train:]
     x_mean, y_mean = S_train.mean(axis=0), targets.mean(axis=0)
     C_train, C_val = S_train - x_mean, S_val - x_mean
@@ -226,7 +227,7 @@ class _RidgeData:
     y_train: np.ndarray
     y_val: np.ndarray
     y_mean: np.ndarray       # one per target column
-    decide: object           # fitted values (rows x targets) -> predictions
+    decide: object           # fitted values (..., rows, targets) -> predictions (..., rows)
 
 
 def _n_poly_columns(n_inputs: int, degree: int) -> int:
@@ -242,9 +243,16 @@ def _design_factor(C: np.ndarray, Yc: np.ndarray) -> np.ndarray:
     Householder QR treats columns left to right, so for the first w columns of
     C, R[:m, :w] (m = min(rows, w)) is their own triangular factor and
     R[:m, C.shape[1]:] is Q_w^T Yc: one factorisation serves every degree, and
-    the n x k matrix U of an SVD of C is never formed.
+    the n x k matrix U of an SVD of C is never formed. SciPy's QR is used
+    because it asks LAPACK for its best workspace (a blocked factorisation,
+    a third faster here) and lets other threads run meanwhile.
     """
-    return np.linalg.qr(np.hstack([C, Yc]), mode="r")
+    from scipy.linalg import qr
+
+    stacked = np.empty((C.shape[0], C.shape[1] + Yc.shape[1]), order="F")
+    stacked[:, :C.shape[1]], stacked[:, C.shape[1]:] = C, Yc
+    _, R = qr(stacked, mode="raw", overwrite_a=True, check_finite=False)
+    return R
 
 
 def _one_degree(data: _RidgeData, width: int, alphas: np.ndarray, task: str,
@@ -274,19 +282,18 @@ def _one_degree(data: _RidgeData, width: int, alphas: np.ndarray, task: str,
     fit_val = _fitted(coefs, data.C_val[:, :width], data.y_mean, alphas.size)
 
     reasons: list[str | None] = [None] * alphas.size
-    for j, kappa in enumerate(kappas):
-        if not kappa <= KAPPA_MAX:
-            reasons[j] = f"ill-conditioned: cond={kappa:.1e} > {KAPPA_MAX:.0e}"
-        elif task == "classification":
-            margin = min(_tie_margin(fit_train[j]), _tie_margin(fit_val[j]))
-            scale = max(1.0, float(np.max(np.abs(fit_train[j]), initial=0.0)))
-            if margin <= TIE_GUARD * kappa * scale:
-                reasons[j] = f"near tie: decision margin {margin:.1e}"
+    for j in np.flatnonzero(~(kappas <= KAPPA_MAX)):
+        reasons[j] = f"ill-conditioned: cond={kappas[j]:.1e} > {KAPPA_MAX:.0e}"
+    if task == "classification":
+        for j, kappa in enumerate(kappas):
+            if reasons[j] is None:
+                margin = min(_tie_margin(fit_train[j]), _tie_margin(fit_val[j]))
+                scale = max(1.0, float(np.max(np.abs(fit_train[j]), initial=0.0)))
+                if margin <= TIE_GUARD * kappa * scale:
+                    reasons[j] = f"near tie: decision margin {margin:.1e}"
 
-    predict_train = np.stack([data.decide(f) for f in fit_train])
-    predict_val = np.stack([data.decide(f) for f in fit_val])
-    train_errors = errors_by_row(metric, data.y_train, predict_train)
-    val_errors = errors_by_row(metric, data.y_val, predict_val)
+    train_errors = errors_by_row(metric, data.y_train, data.decide(fit_train))
+    val_errors = errors_by_row(metric, data.y_val, data.decide(fit_val))
     cells = [FastCell(float(tr), float(va), "svd") for tr, va in zip(train_errors, val_errors)]
     if any(reasons):
         falling = [j for j, why in enumerate(reasons) if why]
@@ -336,7 +343,7 @@ def _fallback_cells(data: _RidgeData, width: int, alphas: np.ndarray, task: str,
         intercept = y_offset - x_offset @ coef.T       # coef is 1-d for a single column
         fitted = [(S @ coef.T + intercept).reshape(S.shape[0], -1) for S in (S_train, S_val)]
         train_error, validation_error = (
-            errors_by_row(metric, y, data.decide(f)[None, :])[0]
+            errors_by_row(metric, y, data.decide(f[None]))[0]
             for y, f in zip((data.y_train, data.y_val), fitted))
         cells.append(FastCell(float(train_error), float(validation_error), "plain-fallback", why))
     return cells
@@ -345,7 +352,7 @@ def _fallback_cells(data: _RidgeData, width: int, alphas: np.ndarray, task: str,
 def _ridge_targets(y_train: np.ndarray, task: str):
     """Regression targets as a column, or RidgeClassifier's +-1 columns, and the decision rule."""
     if task == "regression":
-        return np.asarray(y_train, dtype=float).reshape(-1, 1), lambda fitted: fitted[:, 0]
+        return np.asarray(y_train, dtype=float).reshape(-1, 1), lambda fitted: fitted[..., 0]
     from sklearn.preprocessing import LabelBinarizer
 
     # As RidgeClassifier: LabelBinarizer(pos_label=1, neg_label=-1); one column
@@ -355,9 +362,9 @@ def _ridge_targets(y_train: np.ndarray, task: str):
     classes = binarizer.classes_
 
     def decide(fitted: np.ndarray) -> np.ndarray:
-        if fitted.shape[1] == 1:
-            return classes.take((fitted[:, 0] > 0).astype(np.intp))
-        return classes.take(np.argmax(fitted, axis=1))
+        if fitted.shape[-1] == 1:
+            return classes.take((fitted[..., 0] > 0).astype(np.intp))
+        return classes.take(np.argmax(fitted, axis=-1))
 
     return targets, decide
 
