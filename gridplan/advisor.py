@@ -281,8 +281,9 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         f = states.forecasts[state]
         return {"capacity": capacity_labels[state.capacity_index],
                 "regularization": regularization_labels[state.regularization_index],
-                "size": state.size, "predicted_error": f.predicted, "point": f.point,
-                "interval": [f.low, f.high], "measured": f.measured}
+                "size": state.size, "predicted_error": f.point,
+                "interval": [f.low, f.high], "error_at_confidence": f.predicted,
+                "measured": f.measured}
 
     plan = []
     if found is not None:
@@ -290,7 +291,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         for edge in found[1]:
             cumulative += edge.cost
             plan.append({"action": edge.action, "cost": edge.cost, "cumulative_cost": cumulative,
-                         "predicted_error": states.forecasts[edge.target].predicted,
+                         "predicted_error": states.forecasts[edge.target].point,
                          "from": describe(current), "to": describe(edge.target)})
             current = edge.target
 
@@ -414,13 +415,15 @@ def render_advice(advice: dict) -> str:
         if not advice["plan"]:
             lines.append("Plan: nothing to do; the operating point already meets the target.")
         else:
-            lines.append(f"Cheapest plan (total cost {_money(advice['plan_cost'])}):")
+            lines.append(f"Cheapest plan (total cost {_money(advice['plan_cost'])}; a state meets the "
+                         f"target when its whole {advice['confidence']:.0%} interval is at or below it):")
             for i, step in enumerate(advice["plan"], 1):
                 to = step["to"]
                 lines.append(f"  {i}. {step['action']:<20} -> {to['capacity']},{to['regularization']} "
                              f"at {to['size']:,}   cost {_money(step['cost'])}   cumulative "
                              f"{_money(step['cumulative_cost'])}   predicted error "
-                             f"{_g(step['predicted_error'])}{' (measured)' if to['measured'] else ''}")
+                             f"{_g(step['predicted_error'])} {_interval(to['interval'])}"
+                             f"{' (measured)' if to['measured'] else ''}")
     else:
         lines.append(f"No plan reaches the target. Binding limit: {advice['binding_limit']}.")
         lines.append(f"  {advice['binding_detail']}")

@@ -14,10 +14,12 @@ geometric steps up to `max_samples`.  Moves and their costs:
 - every move optionally adds per_fit_second x the destination's expected fit
   time (measured mean, scaled linearly in size beyond the measured sizes).
 
-A state's predicted error is its measured mean validation error where that
-size was measured, otherwise the upper edge of the setting's forecast band
-at the chosen confidence, never below the grid's noise-floor lower band edge.
-A state meets the target when its predicted error is at or below it.
+Every state has a best estimate of its validation error and an interval at
+the chosen confidence: where its size was measured, the mean over folds and
+the corrected resampled t interval; elsewhere the setting's curve forecast and
+band. Forecasts never go below the grid's noise-floor lower band edge. A state
+meets the target when the upper edge of its interval is at or below it, so
+measured and forecast states are held to the same standard.
 """
 
 from __future__ import annotations
@@ -128,7 +130,10 @@ class State:
 
 @dataclass(frozen=True)
 class Forecast:
-    """Error at a state: `predicted` is what the planner compares with the target."""
+    """Error at a state: best estimate `point` and interval [low, high] at the chosen confidence.
+
+    `predicted` is what the planner compares with the target: the upper edge.
+    """
 
     predicted: float
     point: float
@@ -318,7 +323,7 @@ def state_error_forecasts(curves: Mapping[tuple[int, int], object],
     def forecast(state: State) -> Forecast | None:
         if state in measured:
             mean, low, high = measured[state]
-            return Forecast(mean, mean, low, high, True)
+            return Forecast(high, mean, low, high, True)
         fit = curves.get((state.capacity_index, state.regularization_index))
         if fit is None:
             return None
@@ -326,8 +331,9 @@ def state_error_forecasts(curves: Mapping[tuple[int, int], object],
         low, high = (float(v) for v in fit.band(float(state.size), confidence))
         bound = max(floor_low if floor_low is not None else 0.0,
                     bracket_bottom.get((state.capacity_index, state.regularization_index), 0.0))
-        if not np.isfinite(high):
+        if not (np.isfinite(high) and np.isfinite(point)):
             return None
-        return Forecast(max(high, bound), point, low, high, False)
+        point, low, high = max(point, bound), max(low, bound), max(high, bound)
+        return Forecast(high, point, low, high, False)
 
     return forecast

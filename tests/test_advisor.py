@@ -120,9 +120,15 @@ def test_high_variance_cheap_data_wins_and_expensive_data_lets_regularisation_wi
     assert cheap["diagnosis"]["gap_test"]["p_value"] < 0.05
     assert cheap["actions"][0]["action"] == "more-data"
     assert cheap["plan"][0]["action"] == "more-data"
-    dear = advise(run_dir, target=1.17, at="2,1e-06", per_sample=10.0, curves=curves)
+    # A state meets the target when its whole 90% interval lies at or below it. At 140 rows the
+    # regularised setting's interval (corrected t, 15 folds) reaches about 1.30, the operating
+    # point's higher; a target of 1.31 is met by regularising alone or by a little more data.
+    cheap = advise(run_dir, target=1.31, at="2,1e-06", per_sample=0.01, curves=curves)
+    assert cheap["actions"][0]["action"] == "more-data"
+    dear = advise(run_dir, target=1.31, at="2,1e-06", per_sample=10.0, curves=curves)
     assert dear["actions"][0]["action"] == "more-regularization"
     assert dear["plan_cost"] == 50.0
+    assert dear["plan"][0]["to"]["measured"] and dear["plan"][0]["to"]["error_at_confidence"] <= 1.31
     # same run, same curves: only the costs changed, so the forecasts agree
     assert dear["actions"][0]["predicted_error"] == next(
         a for a in cheap["actions"] if a["action"] == "more-regularization")["predicted_error"]

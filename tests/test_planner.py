@@ -18,6 +18,7 @@ from gridplan.planner import (
     cheapest_plan,
     costs_to_goal,
     rank_first_moves,
+    state_error_forecasts,
     size_ladder,
 )
 
@@ -168,3 +169,29 @@ def test_equal_cost_plans_prefer_fewer_steps_despite_float_noise():
     assert cost == pytest.approx(1.4)
     ranked = rank_first_moves(states, State(0, 0, 140))
     assert ranked[0].edge.target.size == 280 and ranked[1].plan_cost == pytest.approx(1.4)
+
+
+class _LineCurve:
+    """A curve stand-in: error 2 - size/1000, band +-0.1."""
+
+    def predict(self, size: float) -> float:
+        return 2.0 - size / 1000.0
+
+    def band(self, size: float, confidence: float) -> tuple[float, float]:
+        return self.predict(size) - 0.1, self.predict(size) + 0.1
+
+
+def test_measured_and_forecast_states_meet_the_target_by_the_same_rule():
+    # common practice, no published source: "meets the target at the chosen confidence" means the
+    # upper edge of the interval is at or below the target, whether the error was measured or forecast
+    measured = {State(0, 0, 500): (1.45, 1.30, 1.60)}
+    forecast = state_error_forecasts({(0, 0): _LineCurve()}, measured, confidence=0.9, floor_low=1.05)
+    here, later, far = forecast(State(0, 0, 500)), forecast(State(0, 0, 600)), forecast(State(0, 0, 990))
+    assert (here.point, here.low, here.high, here.measured) == (1.45, 1.30, 1.60, True)
+    assert here.predicted == 1.60                       # the mean alone (1.45) would pass a 1.5 target
+    assert (later.point, later.high, later.measured) == (pytest.approx(1.4), pytest.approx(1.5), False)
+    # the noise floor's lower edge bounds point and band alike
+    assert (far.point, far.low) == (1.05, 1.05)
+    states = build_state_graph(forecast, n_capacity=1, n_regularization=1, ladder=[500, 600],
+                               capacity_labels=["a"], costs=CostModel(), target=1.5)
+    assert not states.is_goal(State(0, 0, 500)) and states.is_goal(State(0, 0, 600))
