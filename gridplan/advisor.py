@@ -18,7 +18,7 @@ import pandas as pd
 
 from gridplan.api import open_run
 from gridplan.config import Costs
-from gridplan.curves import DEFAULT_MAX_SIZE, GridCurves, fit_grid
+from gridplan.curves import DEFAULT_BOOT, DEFAULT_MAX_SIZE, GridCurves, fit_grid
 from gridplan.diagnosis import (
     NoiseFloor,
     Thresholds,
@@ -195,7 +195,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
            capacity_step: float | None = None, regularization_step: float | None = None,
            max_samples: int | None = None, less_capacity_step: float | None = None,
            per_fit_second: float | None = None, thresholds: Thresholds | None = None,
-           n_boot: int = 100, seed: int = 0, curves: GridCurves | None = None) -> dict:
+           n_boot: int = DEFAULT_BOOT, seed: int = 0, curves: GridCurves | None = None) -> dict:
     """Diagnose a run at the operating point and plan the cheapest way to the target.
 
     `at` is "CAPACITY,REG" (labels); default: the setting with the lowest mean

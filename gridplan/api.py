@@ -197,7 +197,7 @@ def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> 
     return resolve(config, allow_any_import=allow_any_estimator)
 
 
-def fit_curves(run_dir: str | Path, *, n_boot: int = 200, seed: int = 0):
+def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0):
     """Fit a learning curve per setting of a run (see gridplan.curves.fit_grid)."""
     from gridplan.curves import fit_grid
     cells = open_run(run_dir).cells()
@@ -207,7 +207,7 @@ def fit_curves(run_dir: str | Path, *, n_boot: int = 200, seed: int = 0):
 
 
 def curves_report(run_dir: str | Path, *, target: float | None = None,
-                  confidence: float | None = None, n_boot: int = 200, seed: int = 0) -> dict:
+                  confidence: float | None = None, n_boot: int = 100, seed: int = 0) -> dict:
     """Per-setting curve summary (family, noise floor, forecasts, samples needed)."""
     from gridplan.curves import curves_summary
     run = open_run(run_dir)

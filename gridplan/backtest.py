@@ -46,7 +46,7 @@ def backtest_spec(spec: GridSpec, fraction: float) -> GridSpec:
 
 
 def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None = None,
-             jobs: int | None = None, n_boot: int = 200, seed: int = 0,
+             jobs: int | None = None, n_boot: int = 100, seed: int = 0,
              progress=None, allow_any_estimator: bool = False) -> dict:
     """Run the backtest grid (resumably) and compare forecasts with measurements."""
     from gridplan.curves import fit_grid

@@ -220,7 +220,7 @@ def demo(out: Path = typer.Option(Path("outputs/demo"), "--out", help="Folder fo
     typer.echo(_demo_summary(cells, NOISE_FLOOR_MSE))
     from gridplan.report import REPORT_NAME, gather_inputs, write_inputs
     typer.echo("fitting learning curves and writing the report ...", err=True)
-    inputs = gather_inputs(out / "run", n_boot=60)
+    inputs = gather_inputs(out / "run")
     path = write_inputs(inputs, out / "run" / REPORT_NAME)
     if inputs.advice is not None:
         typer.echo(_advice_summary(inputs.advice))
@@ -255,7 +255,7 @@ def curves(run_dir: Path = typer.Argument(..., help="Run folder."),
            as_json: bool = typer.Option(False, "--json", help="Print JSON instead of a table."),
            plot: bool = typer.Option(False, "--plot", help="Also draw the curves to a PNG/SVG."),
            output: Optional[Path] = typer.Option(None, "-o", "--output", help="Plot file (with --plot)."),
-           boot: int = typer.Option(200, "--boot", help="Bootstrap resamples per curve.")):
+           boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve.")):
     """Fit, extrapolate and summarise each setting's learning curve."""
     import json
     from gridplan import api
@@ -349,7 +349,7 @@ def backtest(config: Path = typer.Argument(..., help="TOML config file."),
              out: Optional[Path] = typer.Option(None, "--out", help="Run folder (default outputs/<name>-backtest)."),
              jobs: Optional[int] = typer.Option(None, "--jobs", "-j"),
              as_json: bool = typer.Option(False, "--json", help="Print JSON instead of a table."),
-             boot: int = typer.Option(200, "--boot", help="Bootstrap resamples per curve."),
+             boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve."),
              allow_any_estimator: bool = typer.Option(False, "--allow-any-estimator")):
     """Forecast the full-size error from a fraction of the data and compare with the truth."""
     import json

@@ -61,6 +61,9 @@ MISFIT_LEVEL = 0.9
 
 #: Fewest sizes for which the family is chosen by hold-out; below it pow3 is used.
 MIN_SIZES_FOR_CHOICE = 5
+#: Bootstrap resamples per curve, the same for every command, so that `advise`,
+#: `report` and `demo` on one run give the same bands and plans.
+DEFAULT_BOOT = 100
 
 #: Largest training size the samples-needed search will consider.
 DEFAULT_MAX_SIZE = 1e12
@@ -595,7 +598,7 @@ def _band_inflation(chi_square: float, dof: int, n_units: int) -> float:
 
 
 def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
-                families: Iterable[str] = DEFAULT_FAMILIES, n_boot: int = 200,
+                families: Iterable[str] = DEFAULT_FAMILIES, n_boot: int = DEFAULT_BOOT,
                 seed: int | np.random.SeedSequence = 0,
                 setting: SettingInfo | None = None, asymptote_min: float = 0.0) -> CurveFit:
     """Fit one learning curve.
@@ -767,7 +770,7 @@ def _fit_one(info: SettingInfo, rows: pd.DataFrame, families, n_boot: int,
 
 
 def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
-             n_boot: int = 200, seed: int = 0, n_jobs: int = 1,
+             n_boot: int = DEFAULT_BOOT, seed: int = 0, n_jobs: int = 1,
              share_floor: bool = True) -> GridCurves:
     """Fit a learning curve for every (capacity, regularisation) setting of a grid.
 

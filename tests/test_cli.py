@@ -220,3 +220,21 @@ def test_long_grid_asks_before_starting(tmp_path, monkeypatch):
     assert accepted.exit_code == 0 and "36 fits stored" in accepted.output
     skipped = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r2"), "--yes", "-q"])
     assert skipped.exit_code == 0 and "Start it?" not in skipped.output
+
+
+def test_every_command_and_function_uses_one_bootstrap_default():
+    # common practice, no published source: advise, report, curves and the demo on one run must
+    # give the same bands and plans, so they share one number of bootstrap resamples
+    import inspect
+
+    import typer.models
+
+    from gridplan import advisor, api, backtest, curves, report
+    functions = [advisor.advise, api.fit_curves, api.curves_report, backtest.backtest,
+                 report.gather_inputs, report.write_report, curves.fit_grid, curves.fit_setting]
+    for function in functions:
+        assert inspect.signature(function).parameters["n_boot"].default == curves.DEFAULT_BOOT, function
+    commands = {c.callback.__name__: c.callback for c in app.registered_commands}
+    for name in ("curves", "advise", "report", "backtest"):
+        option = inspect.signature(commands[name]).parameters["boot"].default
+        assert isinstance(option, typer.models.OptionInfo) and option.default == curves.DEFAULT_BOOT, name
