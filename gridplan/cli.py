@@ -49,9 +49,10 @@ def _describe(spec, run_dir: Path) -> str:
     c, d = spec.config, spec.dataset
     cap = c.capacity
     cap_text = (f"feature sets: {', '.join(cap.labels)}" if cap.feature_sets
-                else f"{cap.param}: {', '.join(cap.labels)}")
+                else f"{cap.param}: {', '.join(cap.labels)} (more capacity to the right)")
     reg = c.regularization
-    reg_text = f"{reg.param}: {', '.join(reg.labels)}" if reg.param else "none"
+    reg_text = (f"{reg.param}: {', '.join(reg.labels)} (more regularisation to the right)"
+                if reg.param else "none")
     path = (fast_path_kind(spec.plan, c.metric) if c.fast_path else None) or "plain fits"
     sizes = ", ".join(map(str, spec.sizes))
     lines = [

@@ -38,7 +38,18 @@ SCHEMA: dict[str, dict[str, str]] = {
             "name": "str", "fast_path": "bool"},
 }
 REQUIRED_SECTIONS = ("data", "model")
-AXIS_KEYS = ("param", "values", "features")
+AXIS_KEYS = ("param", "values", "features", "more")
+#: Parameters whose smaller values mean more of the axis: more regularisation
+#: (C, the tree limits, learning rates, ...) or, on the capacity axis, more
+#: capacity (penalties, leaf minimums, neighbour counts). Any other parameter
+#: means more with larger values; an axis's `more` key overrides both.
+SMALLER_MEANS_MORE = {
+    "capacity": frozenset({"alpha", "ccp_alpha", "l2_regularization", "min_impurity_decrease",
+                           "min_samples_leaf", "min_samples_split", "min_weight_fraction_leaf",
+                           "n_neighbors"}),
+    "regularization": frozenset({"C", "gamma", "learning_rate", "max_depth", "max_features",
+                                 "max_iter", "max_leaf_nodes", "max_samples", "subsample"}),
+}
 
 DEFAULT_CAPACITY_PARAM = {"poly-ridge": "degree", "tree": "max_depth"}
 DEFAULT_REGULARIZATION_PARAM = {"poly-ridge": "alpha", "tree": "min_samples_leaf"}
@@ -47,11 +58,16 @@ DEFAULT_METRIC = {"regression": "mse", "classification": "error_rate"}
 
 @dataclass(frozen=True)
 class Axis:
-    """One model axis: a parameter name and its values (ascending), or feature sets."""
+    """One model axis: a parameter name and its values, or feature sets.
+
+    Values run from least to most capacity (or regularisation): ascending when
+    larger values mean more (`more == "larger"`), descending otherwise.
+    """
 
     param: str | None
     values: tuple[Any, ...]
     feature_sets: tuple[tuple[str, ...], ...] | None = None
+    more: str = "larger"
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -221,6 +237,8 @@ def _read_axis(reader: _Reader, key: str, default_param: str | None,
             raise GridplanError(f"{where}: feature sets belong on the capacity axis only.")
         if "values" in table:
             raise GridplanError(f"{where}: give either values or features, not both.")
+        if "more" in table:
+            raise GridplanError(f"{where}: feature sets are ordered by nesting; more does not apply.")
         return _read_feature_sets(where, table["features"])
     if "values" not in table:
         raise GridplanError(f"{where}.values is missing.")
@@ -234,7 +252,12 @@ def _read_axis(reader: _Reader, key: str, default_param: str | None,
     param = table.get("param", default_param)
     if not isinstance(param, str) or not param:
         raise GridplanError(f"{where}.param must name the estimator parameter, e.g. param = \"alpha\".")
-    return Axis(param=param, values=tuple(values))
+    more = table.get("more", "smaller" if param in SMALLER_MEANS_MORE[key] else "larger")
+    if more not in ("larger", "smaller"):
+        raise GridplanError(f"{where}.more must be \"larger\" or \"smaller\" (which values mean "
+                            f"more {key}), got {more!r}.")
+    ordered = tuple(values) if more == "larger" else tuple(reversed(values))
+    return Axis(param=param, values=ordered, more=more)
 
 
 def _read_feature_sets(where: str, sets: Any) -> Axis:

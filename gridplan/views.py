@@ -203,7 +203,7 @@ def _resolve_setting(run: "Run", setting: Sequence[Any]) -> tuple[int, int]:
 
 @dataclass
 class HeatmapData:
-    """The numbers behind a heatmap: rows are the chosen axis (ascending), columns the sizes."""
+    """The numbers behind a heatmap: rows follow the chosen axis (least to most), columns the sizes."""
 
     show: str
     axis: str

@@ -9,13 +9,14 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from gridplan import api
 from gridplan.advisor import advise, parse_operating_point, render_advice
 from gridplan.api import open_run
 from gridplan.curves import fit_grid
 from gridplan.errors import GridplanError
 from gridplan.planner import ACTIONS
 from gridplan.store import FoldRow, Store
-from tests.helpers import quadratic_data, run_frame
+from tests.helpers import linear_data, quadratic_data, run_frame
 
 SIGMA = 0.5
 N_BOOT = 20
@@ -190,3 +191,29 @@ def test_operating_point_labels_may_contain_commas():
     assert parse_operating_point("a,b,0.1", ["a,b", "+c"], ["0.1", "1"]) == (0, 0)
     assert parse_operating_point("+c,1", ["a,b", "+c"], ["0.1", "1"]) == (1, 1)
     assert parse_operating_point("+c", ["a,b", "+c"], ["none"]) == (1, 0)
+
+
+def test_axis_direction_follows_the_parameter_meaning(tmp_path):
+    # reference library: scikit-learn's LogisticRegression regularises more as C gets smaller, and a
+    # tree as max_leaf_nodes gets smaller; "more-regularization" must step that way
+    from gridplan.config import load_config
+    from tests.helpers import write_config
+    frame = linear_data(200, 2, 0.5, seed=1)
+    frame["y"] = (frame["y"] > frame["y"].median()).astype(int)
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    base = {"data": {"path": "data.csv", "target": "y", "task": "classification"},
+            "model": {"estimator": "sklearn.linear_model.LogisticRegression",
+                      "capacity": {"param": "max_iter", "values": [200]},
+                      "regularization": {"param": "C", "values": [0.01, 1.0, 100.0]}},
+            "sizes": {"values": [40, 120]}, "resampling": {"folds": 3}}
+    config = load_config(write_config(tmp_path, base))
+    assert config.regularization.more == "smaller"
+    assert config.regularization.values == (100.0, 1.0, 0.01)
+    run_dir = api.run(config, out=tmp_path / "run", jobs=1)
+    advice = advise(run_dir, target=0.05, at="200,100", n_boot=10)
+    step = next(a for a in advice["actions"] if a["action"] == "more-regularization")
+    assert step["to"]["regularization"] == "1"
+    assert next(a for a in advice["actions"] if a["action"] == "less-regularization")["to"] is None
+    # an explicit `more` overrides the known meaning
+    base["model"]["regularization"]["more"] = "larger"
+    assert load_config(write_config(tmp_path, base)).regularization.values == (0.01, 1.0, 100.0)

@@ -79,6 +79,10 @@ CONFIG_CASES = [
     ({"data.task": "regresion"}, "did you mean 'regression'?"),
     ({"data.path": "nowhere.csv"}, "data file"),
     ({"data.target": "price"}, "has no target column 'price'"),
+    ({"model.regularization": {"values": [0.1, 1.0], "more": "bigger"}},
+     '[model] regularization.more must be "larger" or "smaller"'),
+    ({"model.capacity": {"features": [["x0"], ["x0", "x1"]], "more": "smaller"}},
+     "feature sets are ordered by nesting; more does not apply"),
 ]
 
 
