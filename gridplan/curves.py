@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from statistics import NormalDist
 from typing import Callable, Iterable, Mapping
 
 import numpy as np
@@ -383,6 +384,20 @@ class CurveFit:
     holdout_errors: dict[str, float | None] = field(default_factory=dict)
     setting: SettingInfo | None = None
     asymptote_min: float = 0.0     # lower bound imposed on the asymptote (shared floor)
+    n_repeats: int = 1             # repeats among the units: passes over the same rows
+
+    @property
+    def data_se(self) -> float:
+        """Standard error of the largest size's validation error as an estimate over data sets.
+
+        Units of different repeats validate on the same rows, so they share
+        the data set's own noise draw; the fold bootstrap cannot see it. One
+        pass over the data has n_units / n_repeats folds, and the usual
+        standard error of a cross-validated error is the spread of its folds
+        over the square root of their number (common practice, e.g. the
+        one-standard-error rule; it leans low because folds overlap).
+        """
+        return float(self.validation_se[-1] * np.sqrt(self.n_repeats))
 
     # -- point forecasts
     @property
@@ -600,7 +615,8 @@ def _band_inflation(chi_square: float, dof: int, n_units: int) -> float:
 def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
                 families: Iterable[str] = DEFAULT_FAMILIES, n_boot: int = DEFAULT_BOOT,
                 seed: int | np.random.SeedSequence = 0,
-                setting: SettingInfo | None = None, asymptote_min: float = 0.0) -> CurveFit:
+                setting: SettingInfo | None = None, asymptote_min: float = 0.0,
+                n_repeats: int = 1) -> CurveFit:
     """Fit one learning curve.
 
     `asymptote_min` bounds the asymptote from below (see `fit_grid`'s shared
@@ -610,7 +626,8 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
     (repeat, fold) unit (NaN where a unit is missing); `train_fold_errors`
     is the same for training error.  The family is chosen by hold-out on
     the largest sizes, then refitted on `n_boot` bootstrap resamples of the
-    units (deterministic given `seed`).
+    units (deterministic given `seed`). `n_repeats` says how many of the units
+    are repeats of one pass over the same rows (see `CurveFit.data_se`).
     """
     families = tuple(families)
     for name in families:
@@ -656,7 +673,8 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
     return CurveFit(family=family, theta=theta, scale=scale, sizes=sizes,
                     validation_mean=level, validation_se=spread, train_mean=train_mean,
                     boot_theta=np.array(boot), n_units=n_units, inflation=inflation,
-                    holdout_errors=holdout, setting=setting, asymptote_min=asymptote_min)
+                    holdout_errors=holdout, setting=setting, asymptote_min=asymptote_min,
+                    n_repeats=max(1, int(n_repeats)))
 
 
 # --- a whole grid ----------------------------------------------------------------
@@ -717,6 +735,11 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
         return None
     key = min(informative, key=lambda k: (informative[k][2], informative[k][0], k))
     value, low, high = informative[key]
+    # The asymptote band comes from a bootstrap over folds, blind to the data
+    # set's own noise draw; add that uncertainty (see CurveFit.data_se).
+    spread = NormalDist().inv_cdf(0.5 + confidence / 2.0) * fits[key].data_se
+    low = value - float(np.hypot(value - low, spread))
+    high = value + float(np.hypot(high - value, spread))
     # The floor lies below every measured validation error (up to its noise).
     # When the converged settings' floor sits above another setting's
     # measurement they are biased, and the data do not pin the floor down.
@@ -761,7 +784,8 @@ def _fit_one(info: SettingInfo, rows: pd.DataFrame, families, n_boot: int,
             raise GridplanError("no rows with status 'ok'")
         sizes, validation, training = _setting_matrices(rows)
         return fit_setting(sizes, validation, training, families=families, n_boot=n_boot,
-                           seed=seed, setting=info, asymptote_min=asymptote_min)
+                           seed=seed, setting=info, asymptote_min=asymptote_min,
+                           n_repeats=rows["repeat"].nunique())
     except GridplanError as problem:
         return {"capacity_index": info.capacity_index,
                 "regularization_index": info.regularization_index,
