@@ -61,8 +61,8 @@ def parse_operating_point(at: str, capacity_labels: list[str],
 def _cost_model(config, overrides: dict) -> CostModel:
     """The config's costs (its defaults without a config), with the given overrides."""
     base = config.costs if config is not None else Costs()
-    values = {**dataclasses.asdict(base), "less_capacity_step": None}
-    values.update({key: value for key, value in overrides.items() if value is not None})
+    values = {**dataclasses.asdict(base),
+              **{key: value for key, value in overrides.items() if value is not None}}
     return CostModel(**values)
 
 

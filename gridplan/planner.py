@@ -27,11 +27,12 @@ from __future__ import annotations
 import heapq
 import itertools
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Callable, Hashable, Mapping, Sequence
 
 import numpy as np
 
+from gridplan.config import Costs
 from gridplan.errors import GridplanError
 
 ACTIONS = ("more-data", "more-capacity", "less-capacity", "more-regularization",
@@ -143,16 +144,10 @@ class Forecast:
 
 
 @dataclass(frozen=True)
-class CostModel:
-    """The user's costs, as the planner uses them."""
+class CostModel(Costs):
+    """The user's costs (config.Costs) as the planner uses them, checked, plus the price of less capacity."""
 
-    per_sample: float = 1.0
-    capacity_step: float = 100.0
-    regularization_step: float = 1.0
     less_capacity_step: float | None = None
-    feature_groups: Mapping[str, float] = field(default_factory=dict)
-    per_fit_second: float = 0.0
-    max_samples: int | None = None
 
     def __post_init__(self) -> None:
         for name in ("per_sample", "capacity_step", "regularization_step", "per_fit_second"):
