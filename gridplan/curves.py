@@ -387,17 +387,18 @@ class CurveFit:
     n_repeats: int = 1             # repeats among the units: passes over the same rows
 
     @property
-    def data_se(self) -> float:
-        """Standard error of the largest size's validation error as an estimate over data sets.
+    def unseen_se(self) -> float:
+        """The part of the largest size's standard error that a bootstrap over units misses.
 
         Units of different repeats validate on the same rows, so they share
-        the data set's own noise draw; the fold bootstrap cannot see it. One
-        pass over the data has n_units / n_repeats folds, and the usual
-        standard error of a cross-validated error is the spread of its folds
-        over the square root of their number (common practice, e.g. the
-        one-standard-error rule; it leans low because folds overlap).
+        the data set's own noise draw. One pass over the data has n_units /
+        n_repeats folds, and the usual standard error of a cross-validated
+        error is the spread of its folds over the square root of their number
+        (common practice, e.g. the one-standard-error rule; it leans low
+        because folds overlap). Resampling all n_units as if independent
+        gives only 1 / n_repeats of that variance; this is the rest.
         """
-        return float(self.validation_se[-1] * np.sqrt(self.n_repeats))
+        return float(self.validation_se[-1] * np.sqrt(self.n_repeats - 1))
 
     # -- point forecasts
     @property
@@ -417,13 +418,18 @@ class CurveFit:
 
     # -- bands
     def _band_from(self, point: np.ndarray, replicates: np.ndarray, confidence: float):
-        """Percentile band of the replicates, its distances from the point scaled by `inflation`."""
+        """Percentile band of the replicates, its distances from the point scaled by `inflation`.
+
+        Each edge is then widened, in quadrature, by the data-set noise the
+        bootstrap cannot see when repeats share rows (`unseen_se`).
+        """
         alpha = 1.0 - _check_confidence(confidence)
         q_low, q_high = np.quantile(replicates, [alpha / 2, 1 - alpha / 2], axis=0,
                                     method="weibull")
-        low = point - self.inflation * (point - q_low)
-        high = point + self.inflation * (q_high - point)
-        return np.maximum(np.minimum(low, point), 0.0), np.maximum(high, point)
+        unseen = NormalDist().inv_cdf(1 - alpha / 2) * self.unseen_se
+        below = np.maximum(self.inflation * (point - q_low), 0.0)
+        above = np.maximum(self.inflation * (q_high - point), 0.0)
+        return np.maximum(point - np.hypot(below, unseen), 0.0), point + np.hypot(above, unseen)
 
     def band(self, m, confidence: float = 0.9) -> tuple[np.ndarray, np.ndarray]:
         """Two-sided confidence band (low, high) for the error at size(s) m."""
@@ -627,7 +633,7 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
     is the same for training error.  The family is chosen by hold-out on
     the largest sizes, then refitted on `n_boot` bootstrap resamples of the
     units (deterministic given `seed`). `n_repeats` says how many of the units
-    are repeats of one pass over the same rows (see `CurveFit.data_se`).
+    are repeats of one pass over the same rows (see `CurveFit.unseen_se`).
     """
     families = tuple(families)
     for name in families:
@@ -735,11 +741,6 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
         return None
     key = min(informative, key=lambda k: (informative[k][2], informative[k][0], k))
     value, low, high = informative[key]
-    # The asymptote band comes from a bootstrap over folds, blind to the data
-    # set's own noise draw; add that uncertainty (see CurveFit.data_se).
-    spread = NormalDist().inv_cdf(0.5 + confidence / 2.0) * fits[key].data_se
-    low = value - float(np.hypot(value - low, spread))
-    high = value + float(np.hypot(high - value, spread))
     # The floor lies below every measured validation error (up to its noise).
     # When the converged settings' floor sits above another setting's
     # measurement they are biased, and the data do not pin the floor down.

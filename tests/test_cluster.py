@@ -7,7 +7,6 @@ import os
 import signal
 import socket
 import sys
-import time
 
 import pandas as pd
 import pytest

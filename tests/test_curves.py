@@ -166,6 +166,37 @@ def test_band_at_twice_the_largest_size_covers_the_truth_about_as_promised():
     assert 0.80 <= hits / draws <= 0.97
 
 
+def shared_rows_folds(truth: np.ndarray, n_rows: int, folds: int, repeats: int, rng,
+                      sigma: float) -> np.ndarray:
+    """Fold errors from one data set: every repeat splits the same rows' noise losses into folds."""
+    losses = sigma ** 2 * (rng.standard_normal(n_rows) ** 2 - 1.0)   # squared-noise loss minus its mean
+    out = np.empty((truth.size, folds * repeats))
+    for r in range(repeats):
+        for f, rows in enumerate(np.array_split(rng.permutation(n_rows), folds)):
+            out[:, r * folds + f] = (truth + losses[rows].mean()
+                                     + 0.02 * truth * rng.standard_normal(truth.size))
+    return out
+
+
+def test_band_covers_the_truth_when_repeats_share_one_data_set():
+    # Synthetic pow3 truth plus each row's squared Gaussian noise (variance 2 sigma^4 per row,
+    # standard result), split into 5 folds by each of 4 repeats of the same 1000 rows. Resampling
+    # the 20 units as if independent misses the data set's own noise draw; told the repeats, the
+    # nominal 90% band should cover about as promised (measured: 66% without, 92% with, 100 draws).
+    rng = np.random.default_rng(7)
+    draws, hits = 60, {1: 0, 4: 0}
+    for i in range(draws):
+        a, b, c = rng.uniform(0.5, 1.5), rng.uniform(2.0, 6.0), rng.uniform(0.3, 0.8)
+        truth = pow3(SIZES, a, b, c)
+        errors = shared_rows_folds(truth, 1000, 5, 4, rng, sigma=0.5)
+        for repeats in hits:
+            fit = fit_setting(SIZES, errors, families=("pow3",), n_boot=20, seed=i, n_repeats=repeats)
+            low, high = fit.band(SIZES[-1], 0.9)
+            hits[repeats] += low <= truth[-1] <= high
+    assert hits[1] / draws <= 0.8
+    assert 0.82 <= hits[4] / draws <= 0.99
+
+
 def test_bootstrap_is_deterministic_given_the_seed():
     rng = np.random.default_rng(3)
     errors = noisy_folds(pow3(SIZES, 0.1, 2.0, 0.5), 6, 0.1, rng)
