@@ -163,12 +163,18 @@ def binding_limit(curves: dict, floor: NoiseFloor | None, target: float, confide
                 f"the lowest error any setting approaches, {floor.value:.4g} [{floor.low:.4g}, "
                 f"{floor.high:.4g}], is at the grid's largest capacity and still falling with "
                 f"capacity, so it may be bias rather than noise: extend the grid (more capacity).")
-    if floor is not None and target <= floor.high:
-        where = "below" if target < floor.low else "inside"
+    if floor is not None and target < floor.low:
         return ("noise floor",
-                f"the target {target:.4g} is {where} the noise-floor estimate {floor.value:.4g} "
+                f"the target {target:.4g} is below the noise-floor estimate {floor.value:.4g} "
                 f"[{floor.low:.4g}, {floor.high:.4g}]: more data or more capacity will not help; "
                 f"only new information (better features or cleaner labels) can.")
+    if floor is not None and target <= floor.high:
+        return ("noise floor",
+                f"the target {target:.4g} is inside the noise-floor band {floor.value:.4g} "
+                f"[{floor.low:.4g}, {floor.high:.4g}]: with the data at hand no plan reaches it at "
+                f"{confidence:.0%} confidence. More rows narrow that band (the best forecasts near "
+                f"{floor.value:.4g} may then qualify); only new information (better features or "
+                f"cleaner labels) lowers the floor itself.")
     best = None
     for key, fit in curves.items():
         if bottoms.get(key, 0.0) > target:
