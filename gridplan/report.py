@@ -576,8 +576,10 @@ def _plan_section(inputs: ReportInputs, number: int) -> Markup:
         total,
         _table(["#", "action", "from", "to", "step cost", "cumulative", "error after the step",
                 "source"], rows, css="numbers plan"),
-        _p(f"Errors after a step are at the upper end of the {a['confidence']:.0%} band for forecast "
-           f"states (the band is shown beside them) and measured means for measured states.", "small")])
+        _p(f"Errors after a step are best estimates with their {a['confidence']:.0%} interval: the mean "
+           f"over folds and its corrected t interval where the size was measured, the curve forecast "
+           f"and its band beyond. A state meets the target when its whole interval is at or below it.",
+           "small")])
 
 
 def _actions_section(inputs: ReportInputs, number: int) -> Markup:
