@@ -413,9 +413,13 @@ def render_advice(advice: dict) -> str:
         lines.append("  (found at the grid's largest capacity and still falling with capacity: it may "
                      "include bias, so no noise-floor verdict is given)")
     if d["removable_by_data"] is not None:
+        left = d["not_removable"]
+        meaning = ("bias + noise that more data cannot remove" if left > 0
+                   else "below zero: with enough data this setting alone could reach the target")
         lines.append(f"  excess over target {_g(d['validation_error'] - advice['target'])} = "
                      f"{_g(d['removable_by_data'])} {_interval(d['removable_band'])} more data can remove"
-                     f" + {_g(d['not_removable'])} {_interval(d['not_removable_band'])} it cannot (bias + noise)")
+                     f" + {_g(left)} {_interval(d['not_removable_band'])} left with unlimited data "
+                     f"(asymptote minus target; {meaning})")
     lines.append("")
     if advice["reachable"]:
         if not advice["plan"]:

@@ -521,8 +521,10 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
         rows.append(("Excess over the target", _num(d["validation_error"] - a["target"])))
         rows.append(("… of which more data can remove",
                      _with_band(d["removable_by_data"], d["removable_band"])))
-        rows.append(("… of which more data cannot remove (bias and noise)",
-                     _with_band(d["not_removable"], d["not_removable_band"])))
+        rows.append(("… left with unlimited data (asymptote minus target)",
+                     _with_band(d["not_removable"], d["not_removable_band"])
+                     + ("; bias and noise that more data cannot remove" if d["not_removable"] > 0
+                        else "; below zero: with enough data this setting alone could reach the target")))
     body = [badge, _facts(rows)]
     if a.get("noise_floor_at_capacity_edge"):
         body.append(_p("The lowest asymptote lies at the grid's largest capacity and is still falling "
