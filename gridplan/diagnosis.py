@@ -188,19 +188,24 @@ def verdict_for(train_error: float, validation_error: float, target: float,
                 f"validation error is within {thresholds.floor_margin:.0%} of the noise floor "
                 f"{noise_floor:.4g} ({numbers})")
     significant = gap_test is not None and gap_test.significant(thresholds.alpha)
-    gap_words = ("gap significant" if significant else "gap not significant") + (
-        f", p={gap_test.p_value:.2g}" if gap_test is not None else ", too few folds to test")
+    if gap_test is None:
+        gap_words = "too few folds to test the gap"
+    else:
+        gap_words = (f"the gap is {'' if significant else 'not '}significant "
+                     f"(p={gap_test.p_value:.2g})")
     bias = bias_share >= thresholds.min_share
     variance = variance_share >= thresholds.min_share and significant
-    shares = (f"training error's excess is {bias_share:.0%} and the gap {variance_share:.0%} "
-              f"of the excess {excess:.4g}; {gap_words}")
+    shares = (f"of the excess {excess:.4g} over the target, {bias_share:.0%} is training error "
+              f"above the target (bias) and {variance_share:.0%} the gap (variance); {gap_words}")
     if bias and variance:
         verdict = "both"
     elif bias or variance:
         verdict = "high-bias" if bias else "high-variance"
     else:
         verdict = "high-bias" if bias_share >= variance_share else "high-variance"
-        shares += f"; neither reaches {thresholds.min_share:.0%} with significance, the larger decides"
+        larger = "bias" if verdict == "high-bias" else "variance"
+        shares += (f", so neither part reaches {thresholds.min_share:.0%} with significance and "
+                   f"the larger one, {larger}, names the verdict")
     return verdict, bias_share, variance_share, f"{shares} ({numbers})"
 
 
