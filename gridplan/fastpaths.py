@@ -159,7 +159,7 @@ def poly_ridge_grid(X_train: np.ndarray, y_train: np.ndarray, X_val: np.ndarray,
         return [[] for _ in degrees]
     if not np.all(np.isfinite(alphas)) or np.any(alphas <= 0):
         raise ValueError("alphas must be positive and finite")
-    width = _n_poly_columns(X_train.shape[1], max(degrees))
+    width = n_poly_columns(X_train.shape[1], max(degrees))
     if features is None:
         features = (polynomial_features(X_train, max(degrees)), polynomial_features(X_val, max(degrees)))
     elif any(P.shape != (X.shape[0], P.shape[1]) or P.shape[1] < width
@@ -209,7 +209,7 @@ def _poly_ridge_grid(P_train, y_train, P_val, y_val, n_inputs, degrees, alphas, 
 
     by_degree = {}
     for degree in sorted(set(degrees)):
-        width = _n_poly_columns(n_inputs, degree)
+        width = n_poly_columns(n_inputs, degree)
         by_degree[degree] = _one_degree(data, width, alphas, task, metric)
     return [by_degree[d] for d in degrees]
 
@@ -230,7 +230,7 @@ class _RidgeData:
     decide: object           # fitted values (..., rows, targets) -> predictions (..., rows)
 
 
-def _n_poly_columns(n_inputs: int, degree: int) -> int:
+def n_poly_columns(n_inputs: int, degree: int) -> int:
     """Columns of PolynomialFeatures(degree, include_bias=False) on n_inputs inputs."""
     from math import comb
 

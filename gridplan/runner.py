@@ -30,6 +30,8 @@ FLUSH_ROWS = 500
 #: Estimated one-core seconds of remaining work below which a local run with
 #: jobs > 1 stays in this process instead of starting worker processes.
 LOCAL_ONLY_SECONDS = 3.0
+#: Largest polynomial feature table built once and shared by a run's ridge tasks.
+SHARED_FEATURES_MAX_BYTES = 512 * 2 ** 20
 
 
 @dataclass(frozen=True)
@@ -152,8 +154,10 @@ def with_shared_features(tasks: list[Task], work: Workload) -> Workload:
     if not shareable or work.poly_features is not None:
         return work
     from dataclasses import replace
-    from gridplan.fastpaths import polynomial_features
+    from gridplan.fastpaths import n_poly_columns, polynomial_features
     top = max(int(plan.capacity_values[ci]) for t in tasks for ci in t.capacity_indices)
+    if work.X.shape[0] * n_poly_columns(work.X.shape[1], top) * 8 > SHARED_FEATURES_MAX_BYTES:
+        return work       # each task builds its own rows' features instead
     return replace(work, poly_features=polynomial_features(work.X, top))
 
 

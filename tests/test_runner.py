@@ -274,3 +274,20 @@ def test_shared_polynomial_features_change_no_number(tmp_path):
         alone, together = runner.run_task(task, work), runner.run_task(task, shared)
         assert [(r.train_error, r.validation_error, r.path) for r in alone] == \
             [(r.train_error, r.validation_error, r.path) for r in together]
+
+
+def test_shared_polynomial_features_have_a_size_limit(tmp_path, monkeypatch):
+    # common practice, no published source: a table too large to hold once is not built;
+    # each task builds its own rows' features as before
+    from gridplan import runner
+    frame = linear_data(300, 3, 0.5, seed=4)
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    spec = resolve(load_config(write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 6]}},
+        "sizes": {"count": 3, "smallest": 20}, "resampling": {"folds": 3}})))
+    work, tasks = runner.workload_of(spec), runner.build_tasks(spec, set())
+    monkeypatch.setattr(runner, "SHARED_FEATURES_MAX_BYTES", 300 * 83 * 8)
+    assert runner.with_shared_features(tasks, work).poly_features.shape == (300, 83)
+    monkeypatch.setattr(runner, "SHARED_FEATURES_MAX_BYTES", 300 * 83 * 8 - 1)
+    assert runner.with_shared_features(tasks, work).poly_features is None
