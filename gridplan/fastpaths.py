@@ -57,6 +57,7 @@ tree
 from __future__ import annotations
 
 from dataclasses import dataclass
+from math import comb
 from typing import Sequence
 
 import numpy as np
@@ -232,8 +233,6 @@ class _RidgeData:
 
 def n_poly_columns(n_inputs: int, degree: int) -> int:
     """Columns of PolynomialFeatures(degree, include_bias=False) on n_inputs inputs."""
-    from math import comb
-
     return comb(n_inputs + degree, degree) - 1
 
 
