@@ -425,6 +425,9 @@ def render_advice(advice: dict) -> str:
         if not advice["plan"]:
             lines.append("Plan: nothing to do; the operating point already meets the target.")
         else:
+            if advice["verdict"] == "fine":
+                lines.append(f"The mean validation error meets the target, but its "
+                             f"{advice['confidence']:.0%} interval does not yet lie below it.")
             lines.append(f"Cheapest plan (total cost {_money(advice['plan_cost'])}; a state meets the "
                          f"target when its whole {advice['confidence']:.0%} interval is at or below it):")
             for i, step in enumerate(advice["plan"], 1):

@@ -564,6 +564,9 @@ def _plan_section(inputs: ReportInputs, number: int) -> Markup:
                    f"to do: the operating point already meets the target {esc(_num(a['target']))} "
                    f"(plan cost {esc(_money(a['plan_cost']))}).</p>"),
             _p("The ranked moves below show what each change would cost and do.")])
+    unsure = ([_p(f"The mean validation error meets the target, but its {a['confidence']:.0%} "
+                  f"interval does not yet lie below it; the plan makes it do so.", "note")]
+              if a.get("verdict") == "fine" else [])
     rows = []
     for n, step in enumerate(a["plan"], 1):
         to = step["to"]
@@ -575,7 +578,7 @@ def _plan_section(inputs: ReportInputs, number: int) -> Markup:
                    f"to the target {esc(_num(a['target']))}: <strong>{esc(len(a['plan']))} step(s), total "
                    f"cost {esc(_money(a['plan_cost']))}</strong>.</p>")
     return _section("plan", number, "The plan", [
-        total,
+        total, *unsure,
         _table(["#", "action", "from", "to", "step cost", "cumulative", "error after the step",
                 "source"], rows, css="numbers plan"),
         _p(f"Errors after a step are best estimates with their {a['confidence']:.0%} interval: the mean "

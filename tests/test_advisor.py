@@ -217,3 +217,15 @@ def test_axis_direction_follows_the_parameter_meaning(tmp_path):
     # an explicit `more` overrides the known meaning
     base["model"]["regularization"]["more"] = "larger"
     assert load_config(write_config(tmp_path, base)).regularization.values == (0.01, 1.0, 100.0)
+
+
+def test_a_mean_below_the_target_is_not_yet_a_confident_one(wide):
+    # common practice, no published source: the verdict reads the mean, the plan the whole interval;
+    # when they disagree the advice says so
+    run_dir, curves = wide
+    advice = advise(run_dir, target=1.19, at="2,1e-06", per_sample=0.01, curves=curves)
+    point = advice["diagnosis"]["validation_error"]
+    assert point <= 1.19 and advice["verdict"] == "fine"
+    assert advice["reachable"] and advice["plan"], "the interval at 140 rows reaches above 1.19"
+    assert advice["plan"][-1]["to"]["error_at_confidence"] <= 1.19
+    assert "does not yet lie below it" in render_advice(advice)
