@@ -142,10 +142,13 @@ def _check_parameters(config: Config, plan: ModelPlan) -> None:
         if param not in available:
             raise GridplanError(f"{name}: [model] params sets {param!r}, which "
                                 f"{config.model_name} does not have{_suggest(param, sorted(available))}.")
+    # The library checks each parameter on its own, so every value of each
+    # axis is checked once (beside the other axis's first value), not every pair.
+    settings = ([(ci, 0) for ci in range(len(plan.capacity_values))]
+                + [(0, ri) for ri in range(1, len(plan.regularization_values))])
     try:
-        for ci in range(len(plan.capacity_values)):
-            for ri in range(len(plan.regularization_values)):
-                build_model(plan, ci, ri, check=True)
+        for ci, ri in settings:
+            build_model(plan, ci, ri, check=True)
     except (TypeError, ValueError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise GridplanError(f"{name}: [model] values are not accepted by {config.model_name}: "
