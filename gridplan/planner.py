@@ -131,16 +131,17 @@ class State:
 
 @dataclass(frozen=True)
 class Forecast:
-    """Error at a state: best estimate `point` and interval [low, high] at the chosen confidence.
+    """Error at a state: best estimate `point` and interval [low, high] at the chosen confidence."""
 
-    `predicted` is what the planner compares with the target: the upper edge.
-    """
-
-    predicted: float
     point: float
     low: float
     high: float
     measured: bool
+
+    @property
+    def predicted(self) -> float:
+        """What the planner compares with the target: the interval's upper edge."""
+        return self.high
 
 
 @dataclass(frozen=True)
@@ -318,7 +319,7 @@ def state_error_forecasts(curves: Mapping[tuple[int, int], object],
     def forecast(state: State) -> Forecast | None:
         if state in measured:
             mean, low, high = measured[state]
-            return Forecast(high, mean, low, high, True)
+            return Forecast(mean, low, high, True)
         fit = curves.get((state.capacity_index, state.regularization_index))
         if fit is None:
             return None
@@ -329,6 +330,6 @@ def state_error_forecasts(curves: Mapping[tuple[int, int], object],
         if not (np.isfinite(high) and np.isfinite(point)):
             return None
         point, low, high = max(point, bound), max(low, bound), max(high, bound)
-        return Forecast(high, point, low, high, False)
+        return Forecast(point, low, high, False)
 
     return forecast

@@ -89,8 +89,8 @@ def test_costs_to_goal_and_ranking_equal_brute_force(problem):
 def test_ranking_orders_first_moves_by_the_cheapest_plan_through_them():
     # a -> goal directly costs 10; a -> b costs 1 and b -> goal costs 2; a -> dead end costs 0.
     a, b, dead, goal = (State(0, 0, m) for m in (10, 20, 30, 40))
-    forecasts = {a: Forecast(5, 5, 5, 5, True), b: Forecast(4, 4, 4, 4, False),
-                 dead: Forecast(3, 3, 3, 3, False), goal: Forecast(1, 1, 1, 1, False)}
+    forecasts = {a: Forecast(5, 5, 5, True), b: Forecast(4, 4, 4, False),
+                 dead: Forecast(3, 3, 3, False), goal: Forecast(1, 1, 1, False)}
     from gridplan.planner import StateGraph
     graph = {a: [Edge("more-capacity", goal, 10.0), Edge("more-data", b, 1.0),
                  Edge("more-regularization", dead, 0.0)],
@@ -130,7 +130,7 @@ def test_cost_model_prices_feature_groups_by_label_and_refuses_negative_costs():
 def _toy_forecast(errors: dict):
     def forecast(state):
         value = errors.get((state.capacity_index, state.regularization_index), {}).get(state.size)
-        return None if value is None else Forecast(value, value, value, value, False)
+        return None if value is None else Forecast(value, value, value, False)
     return forecast
 
 
