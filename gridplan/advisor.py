@@ -385,6 +385,18 @@ def _test_words(test: dict | None, what: str) -> str:
             f"(corrected variance factor {_g(test['factor'], 4)})")
 
 
+def left_with_unlimited_data(left: float) -> str:
+    """What the part of the excess left with unlimited data (asymptote minus target) means."""
+    return ("bias + noise that more data cannot remove" if left > 0
+            else "below zero: with enough data this setting alone could reach the target")
+
+
+def mean_meets_but_interval_not(confidence: float) -> str:
+    """Why a plan is offered although the verdict is fine."""
+    return (f"The mean validation error meets the target, but its {confidence:.0%} interval "
+            f"does not yet lie below it.")
+
+
 def render_advice(advice: dict) -> str:
     """Terminal text for an `advise` result."""
     op, d = advice["operating_point"], advice["diagnosis"]
@@ -414,8 +426,7 @@ def render_advice(advice: dict) -> str:
                      "include bias, so no noise-floor verdict is given)")
     if d["removable_by_data"] is not None:
         left = d["not_removable"]
-        meaning = ("bias + noise that more data cannot remove" if left > 0
-                   else "below zero: with enough data this setting alone could reach the target")
+        meaning = left_with_unlimited_data(left)
         lines.append(f"  excess over target {_g(d['validation_error'] - advice['target'])} = "
                      f"{_g(d['removable_by_data'])} {_interval(d['removable_band'])} more data can remove"
                      f" + {_g(left)} {_interval(d['not_removable_band'])} left with unlimited data "
@@ -426,8 +437,7 @@ def render_advice(advice: dict) -> str:
             lines.append("Plan: nothing to do; the operating point already meets the target.")
         else:
             if advice["verdict"] == "fine":
-                lines.append(f"The mean validation error meets the target, but its "
-                             f"{advice['confidence']:.0%} interval does not yet lie below it.")
+                lines.append(mean_meets_but_interval_not(advice["confidence"]))
             lines.append(f"Cheapest plan (total cost {_money(advice['plan_cost'])}; a state meets the "
                          f"target when its whole {advice['confidence']:.0%} interval is at or below it):")
             for i, step in enumerate(advice["plan"], 1):

@@ -28,6 +28,7 @@ from typing import TYPE_CHECKING, Any, Callable, Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from gridplan.advisor import left_with_unlimited_data, mean_meets_but_interval_not
 from gridplan.errors import GridplanError
 from gridplan.metrics import METRIC_LABELS
 
@@ -523,8 +524,7 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
                      _with_band(d["removable_by_data"], d["removable_band"])))
         rows.append(("… left with unlimited data (asymptote minus target)",
                      _with_band(d["not_removable"], d["not_removable_band"])
-                     + ("; bias and noise that more data cannot remove" if d["not_removable"] > 0
-                        else "; below zero: with enough data this setting alone could reach the target")))
+                     + "; " + left_with_unlimited_data(d["not_removable"])))
     body = [badge, _facts(rows)]
     if a.get("noise_floor_at_capacity_edge"):
         body.append(_p("The lowest asymptote lies at the grid's largest capacity and is still falling "
@@ -564,8 +564,7 @@ def _plan_section(inputs: ReportInputs, number: int) -> Markup:
                    f"to do: the operating point already meets the target {esc(_num(a['target']))} "
                    f"(plan cost {esc(_money(a['plan_cost']))}).</p>"),
             _p("The ranked moves below show what each change would cost and do.")])
-    unsure = ([_p(f"The mean validation error meets the target, but its {a['confidence']:.0%} "
-                  f"interval does not yet lie below it; the plan makes it do so.", "note")]
+    unsure = ([_p(mean_meets_but_interval_not(a["confidence"]) + " The plan makes it do so.", "note")]
               if a.get("verdict") == "fine" else [])
     rows = []
     for n, step in enumerate(a["plan"], 1):
