@@ -72,14 +72,19 @@ def _write_feature_data(tmp_path, n: int) -> None:
     frame.to_csv(tmp_path / "d.csv", index=False)
 
 
-def test_feature_set_capacity_axis(tmp_path):
-    _write_feature_data(tmp_path, 300)
-    config = write_config(tmp_path, {
+def _feature_config(tmp_path, sections: dict):
+    """Config of a degree-1 poly-ridge over the nested feature sets, plus the given sections."""
+    return write_config(tmp_path, {
         "data": {"path": "d.csv", "target": "y"},
         "model": {"family": "poly-ridge", "params": {"degree": 1},
                   "capacity": {"features": FEATURE_SETS},
                   "regularization": {"values": [0.01]}},
-        "sizes": {"values": [50, 200]}, "resampling": {"folds": 3}})
+        **sections})
+
+
+def test_feature_set_capacity_axis(tmp_path):
+    _write_feature_data(tmp_path, 300)
+    config = _feature_config(tmp_path, {"sizes": {"values": [50, 200]}, "resampling": {"folds": 3}})
     result = runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "-q", "-j", "1"])
     assert result.exit_code == 0, result.output
     from gridplan.api import open_run
@@ -185,11 +190,7 @@ def test_report_command_writes_one_html_file(tmp_path):
 def test_feature_groups_are_priced_in_the_plan(tmp_path):
     import json
     _write_feature_data(tmp_path, 400)
-    config = write_config(tmp_path, {
-        "data": {"path": "d.csv", "target": "y"},
-        "model": {"family": "poly-ridge", "params": {"degree": 1},
-                  "capacity": {"features": FEATURE_SETS},
-                  "regularization": {"values": [0.01]}},
+    config = _feature_config(tmp_path, {
         "sizes": {"count": 5, "smallest": 20}, "resampling": {"folds": 4},
         "goal": {"target": 0.2},
         "costs": {"per_sample": 5.0, "capacity_step": 1.0,

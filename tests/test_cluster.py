@@ -109,13 +109,8 @@ def test_cluster_table_equals_local_table(tmp_path, dask_cluster):
         assert cluster.run_on_cluster(spec, store, local.scheduler_address) == 0
 
 
-def test_a_killed_worker_is_replaced_and_the_table_is_complete(tmp_path, dask_cluster,
-                                                               plain_grid):
-    # Common practice, no published source: dask reschedules the cells of a
-    # worker that dies; rows already written stay, none is written twice.
-    local, client = dask_cluster
-    _ready(client)
-    config, expected = plain_grid
+def _worker_killer(client):
+    """A progress callback that SIGKILLs one busy worker after 8 rows, and the list of pids it killed."""
     killed: list[int] = []
 
     def kill_a_busy_worker(done, total):
@@ -124,6 +119,18 @@ def test_a_killed_worker_is_replaced_and_the_table_is_complete(tmp_path, dask_cl
             if pid is not None:
                 os.kill(pid, signal.SIGKILL)
                 killed.append(pid)
+
+    return kill_a_busy_worker, killed
+
+
+def test_a_killed_worker_is_replaced_and_the_table_is_complete(tmp_path, dask_cluster,
+                                                               plain_grid):
+    # Common practice, no published source: dask reschedules the cells of a
+    # worker that dies; rows already written stay, none is written twice.
+    local, client = dask_cluster
+    _ready(client)
+    config, expected = plain_grid
+    kill_a_busy_worker, killed = _worker_killer(client)
 
     spec = resolve(config)
     with prepare_run_dir(spec, tmp_path / "remote") as store:
@@ -150,14 +157,7 @@ def test_when_workers_keep_dying_the_run_says_so_and_a_rerun_completes(tmp_path,
         dask_scheduler.allowed_failures = n
         return previous
 
-    killed: list[int] = []
-
-    def kill_a_busy_worker(done, total):
-        if not killed and done >= 8:
-            pid = _busy_worker_pid(client)
-            if pid is not None:
-                os.kill(pid, signal.SIGKILL)
-                killed.append(pid)
+    kill_a_busy_worker, killed = _worker_killer(client)
 
     previous = client.run_on_scheduler(set_allowed_failures, 0)
     spec = resolve(config)

@@ -35,6 +35,17 @@ def plain_poly_ridge(X_train, y_train, X_val, y_val, degree, alpha, task, metric
             error_of(metric, y_val, model.predict(X_val)))
 
 
+def largest_difference(grid, data, degrees, alphas, task, metric) -> float:
+    """Largest relative difference of any cell's training or validation error from the plain pipeline."""
+    worst = 0.0
+    for degree, row in zip(degrees, grid):
+        for alpha, cell in zip(alphas, row):
+            train_ref, val_ref = plain_poly_ridge(*data, degree, alpha, task, metric)
+            worst = max(worst, rel_diff(cell.train_error, train_ref),
+                        rel_diff(cell.validation_error, val_ref))
+    return worst
+
+
 def regression_data(n_train=120, n_val=80, n_inputs=3, seed=0):
     rng = np.random.default_rng(seed)
     X = rng.uniform(-1.5, 1.5, size=(n_train + n_val, n_inputs))
@@ -75,14 +86,10 @@ def test_poly_ridge_grid_equals_plain_pipeline(task, metric, n_classes):
         X_train, y_train, X_val, y_val = classification_data(n_classes)
     grid = poly_ridge_grid(X_train, y_train, X_val, y_val, DEGREES, ALPHAS, task=task, metric=metric)
     assert len(grid) == len(DEGREES) and all(len(row) == len(ALPHAS) for row in grid)
-    worst, paths = 0.0, []
-    for degree, row in zip(DEGREES, grid):
-        for alpha, cell in zip(ALPHAS, row):
-            train_ref, val_ref = plain_poly_ridge(X_train, y_train, X_val, y_val, degree, alpha, task, metric)
-            worst = max(worst, rel_diff(cell.train_error, train_ref), rel_diff(cell.validation_error, val_ref))
-            paths.append(cell.path)
-    assert worst <= 1e-6
+    assert largest_difference(grid, (X_train, y_train, X_val, y_val), DEGREES, ALPHAS,
+                              task, metric) <= 1e-6
     # the fast path did the work, not the fallback
+    paths = [cell.path for row in grid for cell in row]
     assert paths.count("svd") >= 0.9 * len(paths)
 
 
@@ -91,11 +98,8 @@ def test_poly_ridge_grid_keeps_the_order_it_was_given():
     X_train, y_train, X_val, y_val = regression_data()
     degrees, alphas = [4, 1, 2], [10.0, 1e-3]
     grid = poly_ridge_grid(X_train, y_train, X_val, y_val, degrees, alphas, task="regression", metric="rmse")
-    for degree, row in zip(degrees, grid):
-        for alpha, cell in zip(alphas, row):
-            ref = plain_poly_ridge(X_train, y_train, X_val, y_val, degree, alpha, "regression", "rmse")
-            assert rel_diff(cell.train_error, ref[0]) <= 1e-9
-            assert rel_diff(cell.validation_error, ref[1]) <= 1e-9
+    assert largest_difference(grid, (X_train, y_train, X_val, y_val), degrees, alphas,
+                              "regression", "rmse") <= 1e-9
 
 
 def test_ill_conditioned_cells_fall_back_to_the_plain_fit():
@@ -119,11 +123,8 @@ def test_ill_conditioned_cells_fall_back_to_the_plain_fit():
         assert (cell.train_error, cell.validation_error) == pytest.approx(ref, rel=1e-12)
     # strong regularisation keeps the same design well conditioned
     assert all(row[-1].path == "svd" for row in grid)
-    for degree, row in zip(degrees, grid):
-        for alpha, cell in zip(alphas, row):
-            ref = plain_poly_ridge(X_train, y_train, X_val, y_val, degree, alpha, "regression", "mse")
-            assert rel_diff(cell.train_error, ref[0]) <= 1e-6
-            assert rel_diff(cell.validation_error, ref[1]) <= 1e-6
+    assert largest_difference(grid, (X_train, y_train, X_val, y_val), degrees, alphas,
+                              "regression", "mse") <= 1e-6
 
 
 def test_decision_on_a_tie_falls_back():
