@@ -15,6 +15,7 @@ from typing import Iterator
 
 import pandas as pd
 
+from gridplan.checks import check_path_text
 from gridplan.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
 from gridplan.errors import GridplanError
 from gridplan.spec import GridSpec, identity_difference, resolve
@@ -31,9 +32,11 @@ def default_run_dir(config: Config) -> Path:
 
 def effective_jobs(config: Config, jobs: int | None) -> int:
     """Worker count: the option, else the config; -1 means every core."""
+    from gridplan.config import MAX_JOBS
     n = config.jobs if jobs is None else jobs
-    if n == 0:
-        raise GridplanError("jobs must not be 0; use -1 for all cores or a positive count.")
+    if n == 0 or abs(n) > MAX_JOBS:
+        raise GridplanError(f"jobs must be -1 (all cores) or a count from 1 to {MAX_JOBS:,}, "
+                            f"got {n:,}.")
     return max(1, os.cpu_count() or 1) if n < 0 else n
 
 
@@ -120,6 +123,7 @@ def run(config: Config | str | Path, *, out: str | Path | None = None, jobs: int
         config = load_config(config)
     spec = spec or resolve(config, allow_any_import=allow_any_estimator)
     run_dir = Path(out) if out is not None else default_run_dir(config)
+    check_path_text(run_dir, "run folder")
     address = scheduler or config.scheduler
     with _locked(run_dir):
         store = prepare_run_dir(spec, run_dir)
@@ -162,6 +166,7 @@ class Run:
 def open_run(run_dir: str | Path) -> Run:
     """Open a run folder written by `run` (today's or from another machine)."""
     run_dir = Path(run_dir)
+    check_path_text(run_dir, "run folder")
     with Store.open_existing(run_dir) as store:
         meta, axes = store.meta(), store.axes()
     config = None
@@ -176,18 +181,67 @@ def open_run(run_dir: str | Path) -> Run:
     return Run(run_dir=run_dir, meta=meta, axes=axes, config=config)
 
 
-def export_cells(run_dir: str | Path, out: str | Path) -> int:
-    """Write the per-fold table as CSV (or Parquet by extension); returns the row count."""
-    frame = open_run(run_dir).cells()
-    out = Path(out)
+#: Files of a run folder that an export may never replace.
+RUN_FILES = (STORE_NAME, f"{STORE_NAME}-wal", f"{STORE_NAME}-shm", f"{STORE_NAME}-journal",
+             CONFIG_COPY, LOCK_NAME)
+EXPORTS_KEY = "exports"   # store meta: resolved path -> sha256 of each export written
+
+
+def export_cells(run_dir: str | Path, out: str | Path, *, force: bool = False) -> int:
+    """Write the per-fold table as CSV (or Parquet by extension); returns the row count.
+
+    The table goes to a temporary file beside `out` and is renamed into place,
+    so a failed export leaves no half file. A run folder's own files are never
+    replaced; any other existing file only when this run exported it before,
+    or with `force`.
+    """
+    from gridplan.data import file_fingerprint
+    run_dir, out = Path(run_dir), Path(out)
+    check_path_text(out, "export")
+    run = open_run(run_dir)
+    target = out.resolve()
+    if target.parent == run_dir.resolve() and target.name in RUN_FILES:
+        raise GridplanError(f"{out} is the run folder's own {target.name}; export to another "
+                            f"file name, e.g. {run_dir / 'cells.csv'}.")
+    if not target.parent.is_dir():
+        raise GridplanError(f"cannot write {out}: the folder {target.parent} does not exist.")
+    if target.is_dir():
+        raise GridplanError(f"cannot write {out}: it is a folder; give a file name.")
+    with Store.open_existing(run_dir) as store:
+        written = store.meta().get(EXPORTS_KEY, {})
+    if target.exists() and not force:
+        ours = target.is_file() and written.get(str(target)) == file_fingerprint(target)
+        if not ours:
+            raise GridplanError(f"{out} already exists and is not an earlier export of this run; "
+                                f"pass --force to replace it.")
+    frame = run.cells()
+    temporary = target.with_name(f".{target.name}.{os.getpid()}.partial")
     try:
         if out.suffix.lower() in (".parquet", ".pq"):
-            frame.to_parquet(out, index=False)
+            frame.to_parquet(temporary, index=False)
         else:
-            frame.to_csv(out, index=False)
+            frame.to_csv(temporary, index=False)
+        os.replace(temporary, target)
     except OSError as exc:
-        raise GridplanError(f"cannot write {out}: {exc.strerror}.") from None
+        temporary.unlink(missing_ok=True)
+        raise GridplanError(f"cannot write {out}: {exc.strerror or exc}.") from None
+    except BaseException:
+        temporary.unlink(missing_ok=True)
+        raise
+    _remember_export(run_dir, target, file_fingerprint(target))
     return len(frame)
+
+
+def _remember_export(run_dir: Path, target: Path, digest: str) -> None:
+    """Note an export in the store so a later export may replace it; skipped when read-only."""
+    import sqlite3
+    try:
+        with Store.open_existing(run_dir) as store:
+            written = store.meta().get(EXPORTS_KEY, {})
+            written[str(target)] = digest
+            store.set_meta({EXPORTS_KEY: written})
+    except (sqlite3.Error, GridplanError):
+        pass
 
 
 def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> GridSpec:

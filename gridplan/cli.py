@@ -197,10 +197,13 @@ class _progress_bar:
 @app.command()
 @friendly
 def export(run_dir: Path = typer.Argument(..., help="Run folder."),
-           output: Path = typer.Option(..., "-o", "--output", help="CSV (or .parquet) to write.")):
+           output: Path = typer.Option(..., "-o", "--output", help="CSV (or .parquet) to write."),
+           force: bool = typer.Option(False, "--force",
+                                      help="Replace an existing file that is not an earlier "
+                                           "export of this run.")):
     """Write the tidy per-fold table of a run."""
     from gridplan import api
-    n = api.export_cells(run_dir, output)
+    n = api.export_cells(run_dir, output, force=force)
     typer.echo(f"wrote {n} rows to {output}")
 
 

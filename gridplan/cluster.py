@@ -56,7 +56,7 @@ def _report_failure(done: Future, callback: Callable) -> None:
 
 def run_on_cluster(spec: GridSpec, store: Store, address: str, *,
                    progress: ProgressCallback | None = None, chunk: int | None = None,
-                   connect_timeout: float = CONNECT_TIMEOUT) -> int:
+                   connect_timeout: float | None = None) -> int:
     """Evaluate the grid's unfinished cells on the dask cluster at `address`.
 
     Returns the number of fits written. `chunk` is the number of tasks per
@@ -64,7 +64,7 @@ def run_on_cluster(spec: GridSpec, store: Store, address: str, *,
     """
     _require_dask()
     register_parallel_backend(BACKEND_NAME, ReportingDaskBackend)
-    client = connect(address, timeout=connect_timeout)
+    client = connect(address, timeout=CONNECT_TIMEOUT if connect_timeout is None else connect_timeout)
     try:
         threads = cluster_threads(client, address)
         check_workers_have_gridplan(client, address)
@@ -122,21 +122,51 @@ def _require_dask() -> None:
                             f"install them with: {INSTALL_HINT}") from None
 
 
-def connect(address: str, *, timeout: float = CONNECT_TIMEOUT) -> "Client":
-    """A dask client connected to the scheduler at `address`, or a GridplanError."""
+def connect(address: str, *, timeout: float | None = None) -> "Client":
+    """A dask client connected to the scheduler at `address`, or a GridplanError.
+
+    The scheduler is first asked for its identity under a deadline: dask's own
+    handshake waits without limit for a peer that accepts the connection but
+    never answers, which would hang the run.
+    """
     from distributed import Client
+    timeout = CONNECT_TIMEOUT if timeout is None else timeout
+    unreachable = (f"cannot reach the dask scheduler at {address} within {timeout:g} s; "
+                   f"check that `dask scheduler` runs there and the port is open.")
+    try:
+        answer = probe_scheduler(address, timeout)
+    except ValueError as exc:
+        raise GridplanError(f"{address!r} is not a dask scheduler address ({exc}); "
+                            f"write it as tcp://HOST:PORT.") from None
+    except (OSError, TimeoutError):
+        raise GridplanError(unreachable) from None
+    if not isinstance(answer, dict) or answer.get("type") != "Scheduler":
+        raise GridplanError(f"{address} answered, but not as a dask scheduler; check the "
+                            f"address and port.")
     try:
         return Client(address, timeout=timeout, set_as_default=False)
-    except ValueError as exc:
-        failure = (f"{address!r} is not a dask scheduler address ({exc}); "
-                   f"write it as tcp://HOST:PORT.")
     except (OSError, TimeoutError):
-        failure = (f"cannot reach the dask scheduler at {address} within {timeout:g} s; "
-                   f"check that `dask scheduler` runs there and the port is open.")
+        failure = unreachable
     # A client that failed to connect is finalised here, while its event loop
     # still runs; left to the interpreter's exit it prints a spurious error.
     gc.collect()
     raise GridplanError(failure)
+
+
+def probe_scheduler(address: str, timeout: float) -> object:
+    """The scheduler's identity record, each step (connect, handshake, reply) under `timeout`."""
+    import asyncio
+    from distributed.comm import connect as open_comm
+
+    async def ask() -> object:
+        comm = await asyncio.wait_for(open_comm(address, timeout=timeout), timeout)
+        try:
+            await asyncio.wait_for(comm.write({"op": "identity", "reply": True}), timeout)
+            return await asyncio.wait_for(comm.read(), timeout)
+        finally:
+            comm.abort()
+
+    return asyncio.run(ask())
 
 
 def cluster_threads(client: "Client", address: str) -> int:

@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from gridplan.checks import check_regular_file
 from gridplan.errors import GridplanError
 from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS
 
@@ -35,7 +36,7 @@ SCHEMA: dict[str, dict[str, str]] = {
     "diagnosis": {"floor_margin": "number", "min_share": "number", "alpha": "number",
                   "flat_fraction": "number"},
     "run": {"jobs": "int", "scheduler": "str", "fit_time_limit": "number",
-            "name": "str", "fast_path": "bool"},
+            "name": "str", "fast_path": "bool", "max_fits": "int"},
 }
 REQUIRED_SECTIONS = ("data", "model")
 AXIS_KEYS = ("param", "values", "features", "more")
@@ -50,6 +51,17 @@ SMALLER_MEANS_MORE = {
     "regularization": frozenset({"C", "gamma", "learning_rate", "max_depth", "max_features",
                                  "max_iter", "max_leaf_nodes", "max_samples", "subsample"}),
 }
+
+#: Bounds on a grid, checked before any work. Past them a run outgrows what its
+#: store holds and its curves can be estimated for in reasonable time; fits
+#: may be raised with `[run] max_fits`, the others are hard limits.
+DEFAULT_MAX_FITS = 2_000_000
+MAX_AXIS_VALUES = 1_000
+MAX_SETTINGS = 20_000
+MAX_SIZES = 100
+MAX_JOBS = 1_024
+MAX_FIT_SECONDS = 1e6
+SEED_RANGE = (0, 2 ** 32 - 1)
 
 DEFAULT_CAPACITY_PARAM = {"poly-ridge": "degree", "tree": "max_depth"}
 DEFAULT_REGULARIZATION_PARAM = {"poly-ridge": "alpha", "tree": "min_samples_leaf"}
@@ -124,6 +136,7 @@ class Config:
     name: str
     fast_path: bool = True
     thresholds: dict[str, float] = field(default_factory=dict)
+    max_fits: int = DEFAULT_MAX_FITS
 
     @property
     def model_name(self) -> str:
@@ -245,6 +258,10 @@ def _read_axis(reader: _Reader, key: str, default_param: str | None,
     values = table["values"]
     if not isinstance(values, list):
         raise GridplanError(f"{where}.values must be a list, got {values!r}.")
+    if len(values) > MAX_AXIS_VALUES:
+        raise GridplanError(f"{where}.values holds {len(values):,} values, more than the "
+                            f"{MAX_AXIS_VALUES:,} an axis may have; space them out (a few dozen "
+                            f"on a log scale usually suffice).")
     for v in values:
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
             raise GridplanError(f"{where}.values must hold finite numbers, got {v!r}.")
@@ -261,6 +278,9 @@ def _read_axis(reader: _Reader, key: str, default_param: str | None,
 
 
 def _read_feature_sets(where: str, sets: Any) -> Axis:
+    if isinstance(sets, list) and len(sets) > MAX_AXIS_VALUES:
+        raise GridplanError(f"{where}.features holds {len(sets):,} sets, more than the "
+                            f"{MAX_AXIS_VALUES:,} an axis may have.")
     if not isinstance(sets, list) or not sets or not all(
             isinstance(s, list) and s and all(isinstance(c, str) for c in s) for s in sets):
         raise GridplanError(
@@ -281,8 +301,7 @@ def _read_feature_sets(where: str, sets: Any) -> Axis:
 def load_config(path: str | Path) -> Config:
     """Read and validate a config file; paths inside are resolved relative to it."""
     path = Path(path)
-    if not path.is_file():
-        raise GridplanError(f"config file {str(path)!r} does not exist.")
+    check_regular_file(path, "config file")
     try:
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
@@ -316,6 +335,8 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         thresholds[key] = value
 
     data_path = data.get("path", "str", required=True)
+    if "\0" in data_path:
+        raise GridplanError(f"{data.where('path')} contains a NUL byte, got {data_path!r}.")
     resolved_data = (path.parent / data_path).resolve()
     target = data.get("target", "str", required=True)
     task = data.get("task", "str", default="regression")
@@ -362,11 +383,15 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         for v in size_values:
             if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
                 raise GridplanError(f"{sizes.where('values')} must hold positive whole numbers, got {v!r}.")
+        if len(size_values) > MAX_SIZES:
+            raise GridplanError(f"{sizes.where('values')} holds {len(size_values):,} sizes, more "
+                                f"than the {MAX_SIZES} a learning curve may have.")
         _check_ascending(sizes.where("values"), size_values)
         size_values = tuple(size_values)
     size_count = sizes.get("count", "int", default=8)
-    if size_count < 1:
-        raise GridplanError(f"{sizes.where('count')} must be at least 1, got {size_count}.")
+    if not 1 <= size_count <= MAX_SIZES:
+        raise GridplanError(f"{sizes.where('count')} must lie between 1 and {MAX_SIZES}, got "
+                            f"{size_count:,}; a learning curve needs a handful of sizes, not more.")
     smallest = sizes.get("smallest", "int")
     if smallest is not None and smallest < 1:
         raise GridplanError(f"{sizes.where('smallest')} must be positive, got {smallest}.")
@@ -378,8 +403,9 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     if repeats < 1:
         raise GridplanError(f"{resampling.where('repeats')} must be at least 1, got {repeats}.")
     seed = resampling.get("seed", "int", default=0)
-    if seed < 0:
-        raise GridplanError(f"{resampling.where('seed')} must be zero or positive, got {seed}.")
+    if not SEED_RANGE[0] <= seed <= SEED_RANGE[1]:
+        raise GridplanError(f"{resampling.where('seed')} must lie between {SEED_RANGE[0]} and "
+                            f"{SEED_RANGE[1]:,} (2^32 - 1), got {seed:,}.")
 
     metric = goal.get("metric", "str", default=DEFAULT_METRIC[task])
     allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
@@ -412,15 +438,20 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
                      feature_groups={k: float(v) for k, v in groups.items()})
 
     jobs = run.get("jobs", "int", default=-1)
-    if jobs == 0:
-        raise GridplanError(f"{run.where('jobs')} must not be 0; use -1 for all cores or a positive count.")
+    if jobs == 0 or abs(jobs) > MAX_JOBS:
+        raise GridplanError(f"{run.where('jobs')} must be -1 (all cores) or a count from 1 to "
+                            f"{MAX_JOBS:,}, got {jobs:,}.")
     scheduler = run.get("scheduler", "str")
     limit = run.get("fit_time_limit", "number")
-    if limit is not None and limit <= 0:
-        raise GridplanError(f"{run.where('fit_time_limit')} must be positive seconds, got {limit:g}.")
-    name = run.get("name", "str", default=path.stem)
-    if not name or "/" in name or "\\" in name or name in (".", ".."):
-        raise GridplanError(f"{run.where('name')} must be a plain folder name, got {name!r}.")
+    if limit is not None and not 0 < limit <= MAX_FIT_SECONDS:
+        raise GridplanError(f"{run.where('fit_time_limit')} must be positive seconds up to "
+                            f"{MAX_FIT_SECONDS:,.0f}, got {limit:g}.")
+    name = check_run_name(run.get("name", "str", default=path.stem), run.where("name"))
+    max_fits = run.get("max_fits", "int", default=DEFAULT_MAX_FITS)
+    if max_fits < 1:
+        raise GridplanError(f"{run.where('max_fits')} must be positive, got {max_fits:,}.")
+    _check_grid_size(path, capacity, regularization, size_values, size_count, folds, repeats,
+                     max_fits)
 
     return Config(
         source=path, text=text, data_path=resolved_data, target=target, task=task,
@@ -429,8 +460,38 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         size_values=size_values, size_count=size_count, smallest_size=smallest,
         folds=folds, repeats=repeats, seed=seed, metric=metric,
         target_error=target_error, confidence=confidence, costs=cost_obj, jobs=jobs,
-        scheduler=scheduler, fit_time_limit=limit, name=name,
+        scheduler=scheduler, fit_time_limit=limit, name=name, max_fits=max_fits,
         fast_path=run.get("fast_path", "bool", default=True), thresholds=thresholds)
+
+
+def check_run_name(name: str, where: str) -> str:
+    """A run name must be a plain, printable folder name."""
+    if not name or "/" in name or "\\" in name or name in (".", ".."):
+        raise GridplanError(f"{where} must be a plain folder name, got {name!r}.")
+    if not name.isprintable():
+        bad = next(ch for ch in name if not ch.isprintable())
+        raise GridplanError(f"{where} must hold printable characters only; {name!r} contains "
+                            f"U+{ord(bad):04X}.")
+    return name
+
+
+def _check_grid_size(path: Path, capacity: Axis, regularization: Axis,
+                     size_values: tuple[int, ...] | None, size_count: int, folds: int,
+                     repeats: int, max_fits: int) -> None:
+    """Refuse, before any work, a grid with more settings or fits than a run can hold."""
+    settings = len(capacity) * len(regularization)
+    if settings > MAX_SETTINGS:
+        raise GridplanError(f"{path.name}: [model] the grid has {settings:,} settings "
+                            f"({len(capacity):,} capacity x {len(regularization):,} "
+                            f"regularization values), more than the {MAX_SETTINGS:,} whose curves "
+                            f"gridplan can estimate; use fewer values on an axis.")
+    n_sizes = len(size_values) if size_values is not None else size_count
+    fits = settings * n_sizes * folds * repeats
+    if fits > max_fits:
+        raise GridplanError(f"{path.name}: the grid asks for {fits:,} fits ({settings:,} "
+                            f"settings x {n_sizes} sizes x {folds:,} folds x {repeats:,} repeats), "
+                            f"above the limit of {max_fits:,}; shrink an axis, the sizes, folds "
+                            f"or repeats, or raise [run] max_fits if you mean it.")
 
 
 def _check_family_axis(where: str, family: str, axis: Axis) -> None:

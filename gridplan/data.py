@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 from pandas.api.types import is_numeric_dtype
 
+from gridplan.checks import check_regular_file
 from gridplan.config import Config
 from gridplan.errors import GridplanError
 
@@ -43,8 +44,7 @@ def file_fingerprint(path: Path) -> str:
 
 def read_table(path: Path) -> pd.DataFrame:
     """Read a CSV or Parquet file; one clear sentence when it cannot be read."""
-    if not path.is_file():
-        raise GridplanError(f"data file {str(path)!r} does not exist.")
+    check_regular_file(path, "data file")
     suffix = path.suffix.lower()
     try:
         if suffix in (".parquet", ".pq"):
@@ -103,6 +103,13 @@ def load_dataset(config: Config) -> Dataset:
         raise GridplanError(f"{name} has missing feature values in {listed}; fill them or set "
                             f"missing = \"impute\" in [data].")
     numeric = tuple(c for c in wanted if is_numeric_dtype(X[c]) and not X[c].dtype == bool)
+    infinite = {c: int(np.isinf(X[c].to_numpy(dtype=float)).sum()) for c in numeric}
+    infinite = {c: n for c, n in infinite.items() if n}
+    if infinite:
+        listed = ", ".join(f"{c} ({n})" for c, n in infinite.items())
+        raise GridplanError(f"{name} has infinite feature values in {listed}; replace them with "
+                            f"finite numbers or leave the cells empty (missing = \"impute\" "
+                            f"fills only empty cells).")
     categorical = tuple(c for c in wanted if c not in numeric)
     for c in numeric:
         X[c] = X[c].astype(float)

@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import importlib
 import inspect
+import math
+import os
 from dataclasses import dataclass
 from typing import Any
 
@@ -153,6 +155,62 @@ def _check_parameters(config: Config, plan: ModelPlan) -> None:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise GridplanError(f"{name}: [model] values are not accepted by {config.model_name}: "
                             f"{first}") from None
+
+
+#: Copies of the widest feature table one poly fit holds at once (the expanded
+#: features, their scaled copy and the solver's workspace).
+POLY_TABLE_COPIES = 3
+
+
+def polynomial_width(plan: ModelPlan, dataset: Dataset) -> int:
+    """Columns after polynomial expansion at the grid's largest degree (0 for other models)."""
+    if plan.family not in POLY_FAMILIES:
+        return 0
+    degree = _largest_degree(plan)
+    columns = plan.feature_sets[-1] if plan.feature_sets is not None else plan.columns(0)
+    inputs = sum(int(dataset.X[c].nunique()) if c in plan.categorical else 1 for c in columns)
+    return math.comb(inputs + degree, degree) - 1
+
+
+def available_memory() -> int:
+    """Bytes of memory this machine can still hand out (MemAvailable, else physical memory)."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as handle:
+            for line in handle:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    try:
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        return 2 ** 63
+
+
+def check_polynomial_memory(plan: ModelPlan, dataset: Dataset, rows: int, where: str) -> None:
+    """Refuse a polynomial expansion whose tables for one fit of `rows` rows exceed memory."""
+    width = polynomial_width(plan, dataset)
+    needed = width * rows * 8 * POLY_TABLE_COPIES
+    free = available_memory()
+    if needed > free:
+        raise GridplanError(
+            f"{where}: degree {_largest_degree(plan)} on these columns makes {width:,} polynomial "
+            f"features; one fit on {rows:,} rows would need about {_bytes(needed)}, more than the "
+            f"{_bytes(free)} of memory available; lower the degree or use fewer columns.")
+
+
+def _largest_degree(plan: ModelPlan) -> int:
+    if plan.capacity_param == "degree":
+        return max(int(d) for d in plan.capacity_values)
+    return int(plan.params.get("degree", 1))
+
+
+def _bytes(n: float) -> str:
+    for unit in ("B", "KiB", "MiB", "GiB", "TiB", "PiB"):
+        if n < 1024 or unit == "PiB":
+            return f"{n:,.0f} {unit}" if unit == "B" else f"{n:,.1f} {unit}"
+        n /= 1024
+    return f"{n:.1f} PiB"
 
 
 def needs_encoder(plan: ModelPlan) -> bool:

@@ -10,7 +10,7 @@ from typing import Any
 from gridplan.config import Config
 from gridplan.data import Dataset, load_dataset
 from gridplan.errors import GridplanError
-from gridplan.families import ModelPlan, plan_model
+from gridplan.families import ModelPlan, check_polynomial_memory, plan_model
 from gridplan.splits import Fold, make_folds, size_ladder, smallest_training_fold
 
 
@@ -83,6 +83,7 @@ def resolve(config: Config, *, allow_any_import: bool = False) -> GridSpec:
     if classification and sizes[0] < len(dataset.labels):
         raise GridplanError(f"{config.source.name}: [sizes] smallest training size {sizes[0]} is "
                             f"below the number of classes ({len(dataset.labels)}).")
+    check_polynomial_memory(plan, dataset, sizes[-1], config.source.name)
     return GridSpec(config=config, dataset=dataset, plan=plan, folds=tuple(folds), sizes=sizes)
 
 

@@ -185,3 +185,111 @@ def test_diagnosis_thresholds_are_read_and_checked(tmp_path):
     assert config.thresholds == {"floor_margin": 0.1, "min_share": 0.3}
     sections["diagnosis"] = {"alpha": 1.5}
     assert "[diagnosis] alpha is out of range" in _check(tmp_path, sections)
+
+
+# -- round 2: hostile inputs a new user tried -------------------------------
+
+LIMIT_CASES = [
+    ({"resampling.repeats": 1_000_000_000},
+     "asks for 24,000,000,000 fits (4 settings x 2 sizes x 3 folds x 1,000,000,000 repeats), "
+     "above the limit of 2,000,000"),
+    ({"sizes.values": None, "sizes.count": 1_000_000_000},
+     "[sizes] count must lie between 1 and 100, got 1,000,000,000"),
+    ({"resampling.seed": 2 ** 32}, "[resampling] seed must lie between 0 and 4,294,967,295"),
+    ({"resampling.seed": -1}, "[resampling] seed must lie between 0 and 4,294,967,295"),
+    ({"resampling.seed": 2 ** 63 - 1}, "got 9,223,372,036,854,775,807"),
+    ({"run.jobs": 10 ** 9}, "[run] jobs must be -1 (all cores) or a count from 1 to 1,024"),
+    ({"run.fit_time_limit": 1e300}, "[run] fit_time_limit must be positive seconds up to 1,000,000"),
+    ({"model.regularization": {"values": [float(v) for v in range(1, 2002)]}},
+     "[model] regularization.values holds 2,001 values, more than the 1,000 an axis may have"),
+    ({"model.family": None, "model.estimator": "sklearn.neighbors.KNeighborsRegressor",
+      "model.capacity": {"param": "n_neighbors", "values": list(range(1, 201))},
+      "model.regularization": {"param": "leaf_size", "values": list(range(1, 201))}},
+     "the grid has 40,000 settings (200 capacity x 200 regularization values), more than the "
+     "20,000"),
+    ({"run.max_fits": 0}, "[run] max_fits must be positive"),
+]
+
+
+@pytest.mark.parametrize("change, expected", LIMIT_CASES)
+def test_grids_beyond_the_limits_are_refused_before_any_work(tmp_path, change, expected):
+    sections = _with({k: v for k, v in change.items() if not k.startswith("run.")})
+    for key, value in change.items():
+        if key.startswith("run."):
+            sections.setdefault("run", {})[key[4:]] = value
+    assert expected in _check(tmp_path, sections)
+
+
+def test_an_axis_of_two_million_values_is_refused_at_once(tmp_path):
+    values = ", ".join(str(i) for i in range(1, 2_000_001))
+    text = ("[data]\npath = \"data.csv\"\ntarget = \"y\"\n[model]\nfamily = \"tree\"\n"
+            f"[model.capacity]\nvalues = [{values}]\n")
+    assert "holds 2,000,000 values, more than the 1,000" in _check(tmp_path, text=text)
+
+
+def test_max_fits_can_be_raised_explicitly(tmp_path):
+    from gridplan.config import load_config
+    linear_data(120, 2, 0.5, seed=0).to_csv(tmp_path / "data.csv", index=False)
+    sections = _with({"resampling.repeats": 2})
+    sections["run"] = {"max_fits": 40}
+    assert "above the limit of 40" in _check(tmp_path, sections)
+    sections["run"] = {"max_fits": 48}   # 4 settings x 2 sizes x 3 folds x 2 repeats
+    assert load_config(write_config(tmp_path, sections)).max_fits == 48
+
+
+def test_a_polynomial_expansion_beyond_memory_is_refused_with_its_size(tmp_path):
+    frame = linear_data(120, 40, 0.5, seed=0)
+    # comb(40 + 12, 12) - 1 polynomial features of 40 columns at degree 12
+    message = _check(tmp_path, _with({"model.capacity": {"values": [1, 12]}}), frame)
+    assert "degree 12 on these columns makes 206,379,406,869 polynomial features" in message
+    assert "of memory available" in message
+
+
+def test_infinite_feature_values_name_the_column_and_count(tmp_path):
+    frame = linear_data(120, 2, 0.5, seed=0)
+    frame.loc[[1, 4], "x1"] = np.inf
+    frame.loc[[2], "x0"] = -np.inf
+    for sections in (_with({}), _with({"data.missing": "impute"})):
+        message = _check(tmp_path, sections, frame)
+        assert "infinite feature values in x0 (1), x1 (2)" in message
+
+
+def test_nul_bytes_in_paths_and_run_names_are_one_sentence(tmp_path):
+    assert "[data] path contains a NUL byte" in _check(tmp_path, _with({"data.path": "da\0ta.csv"}))
+    sections = _with({})
+    sections["run"] = {"name": "a\0b"}
+    assert "[run] name must hold printable characters only" in _check(tmp_path, sections)
+    # A shell cannot pass a NUL in an argument; from Python, the CLI's parser
+    # refuses it as a usage error naming the argument.
+    result = runner.invoke(app, ["check", str(tmp_path / "gr\0id.toml")])
+    assert result.exit_code == 2 and "Invalid value for 'config'" in result.output
+    assert "null byte" in result.output and "Traceback" not in result.output
+    from gridplan.errors import GridplanError
+    from gridplan import api
+    with pytest.raises(GridplanError, match="run folder path .* contains a NUL byte"):
+        api.open_run(tmp_path / "r\0un")
+
+
+@pytest.mark.parametrize("name", ["two\nlines", "bell\x07", "tab\there", "evil\u202etxt.csv",
+                                  "zero\u200bwidth"])
+def test_run_names_with_control_or_bidi_characters_are_refused(tmp_path, name):
+    sections = _with({})
+    sections["run"] = {"name": name}
+    message = _check(tmp_path, sections)
+    assert "[run] name must hold printable characters only" in message
+    assert f"U+{ord(next(c for c in name if not c.isprintable())):04X}" in message
+
+
+def test_data_paths_that_are_not_regular_files_say_what_they_are(tmp_path):
+    import os
+    (tmp_path / "folder.csv").mkdir()
+    os.mkfifo(tmp_path / "pipe.csv")
+    cases = [("folder.csv", "is a directory, not a regular file"),
+             ("pipe.csv", "is a named pipe (FIFO), not a regular file"),
+             ("/dev/zero", "is a device, not a regular file")]
+    for path, expected in cases:
+        message = _check(tmp_path, _with({"data.path": path}))
+        assert expected in message and "does not exist" not in message
+    result = runner.invoke(app, ["check", str(tmp_path / "folder.csv")])
+    assert result.exit_code == 1 and "config file" in result.output
+    assert "is a directory, not a regular file" in result.output

@@ -156,3 +156,95 @@ def test_unwritable_output_folder_is_a_clear_error(tmp_path):
     blocker.write_text("not a folder")
     with pytest.raises(GridplanError, match="cannot create run folder"):
         api.run(config, out=blocker / "run", jobs=1)
+
+
+# -- round 2: export never loses the store, silent schedulers time out -------
+
+def _small_run(tmp_path) -> Path:
+    linear_data(120, 2, 0.5, seed=1).to_csv(tmp_path / "data.csv", index=False)
+    config = write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2]}},
+        "sizes": {"values": [30, 60]}, "resampling": {"folds": 3}})
+    return api.run(load_config(config), out=tmp_path / "run", jobs=1)
+
+
+def _export(*args: str):
+    from typer.testing import CliRunner
+    from gridplan.cli import app
+    return CliRunner().invoke(app, ["export", *map(str, args)])
+
+
+def test_export_refuses_the_run_folders_own_files_even_with_force(tmp_path):
+    run_dir = _small_run(tmp_path)
+    own = {name: (run_dir / name).read_bytes() for name in ("store.sqlite", "config.toml")}
+    (tmp_path / "alias").symlink_to(run_dir / "store.sqlite")
+    targets = [run_dir / "store.sqlite", run_dir / "config.toml", run_dir / "run.lock",
+               run_dir / ".." / "run" / "store.sqlite", tmp_path / "alias"]
+    for target in targets:
+        for extra in ((), ("--force",)):
+            result = _export(run_dir, "-o", target, *extra)
+            assert result.exit_code == 1, result.output
+            assert "is the run folder's own" in result.output and "Traceback" not in result.output
+    for name, content in own.items():
+        assert (run_dir / name).read_bytes() == content    # byte-identical
+    assert len(api.open_run(run_dir).cells()) == 4 * 3
+
+
+def test_export_replaces_only_its_own_earlier_exports_without_force(tmp_path):
+    run_dir = _small_run(tmp_path)
+    out = tmp_path / "cells.csv"
+    assert _export(run_dir, "-o", out).exit_code == 0
+    first = pd.read_csv(out)
+    assert len(first) == 4 * 3
+    assert _export(run_dir, "-o", out).exit_code == 0       # its own export: replaced
+    notes = tmp_path / "notes.csv"
+    notes.write_text("my own notes\n")
+    result = _export(run_dir, "-o", notes)
+    assert result.exit_code == 1 and "already exists and is not an earlier export" in result.output
+    assert notes.read_text() == "my own notes\n"
+    assert _export(run_dir, "-o", notes, "--force").exit_code == 0
+    pd.testing.assert_frame_equal(pd.read_csv(notes), first)
+    out.write_text("edited by hand\n")                      # changed since: no longer ours
+    assert _export(run_dir, "-o", out).exit_code == 1
+
+
+def test_export_into_a_missing_folder_names_the_folder(tmp_path):
+    run_dir = _small_run(tmp_path)
+    result = _export(run_dir, "-o", tmp_path / "nowhere" / "cells.csv")
+    assert result.exit_code == 1
+    assert f"the folder {tmp_path / 'nowhere'} does not exist" in result.output
+    assert "None" not in result.output
+
+
+def test_a_failed_export_leaves_no_half_file(tmp_path, monkeypatch):
+    run_dir = _small_run(tmp_path)
+
+    def write_half_then_fail(self, path, **kwargs):
+        Path(path).write_text("x0,x1\n1,")
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(pd.DataFrame, "to_csv", write_half_then_fail)
+    with pytest.raises(GridplanError, match="No space left on device"):
+        api.export_cells(run_dir, tmp_path / "cells.csv")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["data.csv", "grid.toml", "run"]
+
+
+def test_a_scheduler_that_accepts_but_never_answers_fails_in_one_sentence(tmp_path, monkeypatch):
+    import socket
+    import threading
+    from gridplan import cluster
+    monkeypatch.setattr(cluster, "CONNECT_TIMEOUT", 1.0)
+    listener = socket.socket()
+    listener.bind(("127.0.0.1", 0))
+    listener.listen(4)
+    accepted = []
+    threading.Thread(target=lambda: accepted.append(listener.accept()), daemon=True).start()
+    address = f"tcp://127.0.0.1:{listener.getsockname()[1]}"
+    config = load_config(_slow_grid(tmp_path))
+    try:
+        with pytest.raises(GridplanError, match="cannot reach the dask scheduler at") as caught:
+            api.run(config, out=tmp_path / "run", scheduler=address)
+    finally:
+        listener.close()
+    assert address in str(caught.value) and accepted    # it did accept the connection
