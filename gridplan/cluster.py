@@ -131,7 +131,8 @@ def connect(address: str, *, timeout: float | None = None) -> "Client":
     """
     from distributed import Client
     timeout = CONNECT_TIMEOUT if timeout is None else timeout
-    unreachable = (f"cannot reach the dask scheduler at {address} within {timeout:g} s; "
+    unreachable = (f"cannot reach the dask scheduler at {address} within {timeout:g} s (no connection, "
+                   f"or no answer to it); "
                    f"check that `dask scheduler` runs there and the port is open.")
     try:
         answer = probe_scheduler(address, timeout)
