@@ -231,7 +231,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         return f"{capacity_labels[ci]},{regularization_labels[ri]}"
 
     if curves is None:
-        curves = fit_grid(cells, n_boot=n_boot, seed=seed, n_jobs=-1)
+        curves = fit_grid(cells, n_boot=n_boot, seed=seed)
     test_sizes = run.meta.get("test_sizes") or []
     n_test = float(np.mean(test_sizes)) if test_sizes else float(
         run.meta.get("n_rows", 0)) / max(int(run.meta.get("folds", 5)), 1)

@@ -257,7 +257,7 @@ def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0):
     cells = open_run(run_dir).cells()
     if cells.empty:
         raise GridplanError(f"{run_dir} holds no finished fits yet; run the grid first.")
-    return fit_grid(cells, n_boot=n_boot, seed=seed, n_jobs=-1)
+    return fit_grid(cells, n_boot=n_boot, seed=seed)
 
 
 def curves_report(run_dir: str | Path, *, target: float | None = None,

@@ -57,7 +57,7 @@ def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None =
     cells = api.open_run(run_dir).cells()
     full = spec.sizes[-1]
     ok = cells[cells.status == "ok"]
-    fits = fit_grid(ok[ok.train_size < full], n_boot=n_boot, seed=seed, n_jobs=-1)
+    fits = fit_grid(ok[ok.train_size < full], n_boot=n_boot, seed=seed)
     measured = ok[ok.train_size == full].groupby(
         ["capacity_index", "regularization_index"]).validation_error.mean()
     rows = []

@@ -26,6 +26,7 @@ like a plain power law; `CurveFit.params` reports the formula's own a, b, c, d.
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass, field
 from statistics import NormalDist
 from typing import Callable, Iterable, Mapping
@@ -100,13 +101,18 @@ class Family:
         return len(self.param_names)
 
 
+def _columns(parts: list) -> np.ndarray:
+    """Jacobian columns stacked on a last axis: (n, p) for one curve, (K, n, p) for many."""
+    return np.stack(np.broadcast_arrays(*parts), axis=-1)
+
+
 def _pow3(x, t):
     return t[0] + t[1] * np.power(x, -t[2])
 
 
 def _pow3_jacobian(x, t):
     power = np.power(x, -t[2])
-    return np.column_stack([np.ones_like(x), power, -t[1] * power * np.log(x)])
+    return _columns([np.ones_like(x), power, -t[1] * power * np.log(x)])
 
 
 def _pow3_invert(t, target):
@@ -121,7 +127,7 @@ def _pow4_jacobian(x, t):
     base = t[1] * x + t[3]
     power = np.power(base, -t[2])
     slope = -t[2] * power / base
-    return np.column_stack([np.ones_like(x), slope * x, -power * np.log(base), slope])
+    return _columns([np.ones_like(x), slope * x, -power * np.log(base), slope])
 
 
 def _pow4_invert(t, target):
@@ -136,7 +142,7 @@ def _exp3(x, t):
 
 def _exp3_jacobian(x, t):
     decay = np.exp(-t[2] * x)
-    return np.column_stack([np.ones_like(x), decay, -t[1] * x * decay])
+    return _columns([np.ones_like(x), decay, -t[1] * x * decay])
 
 
 def _exp3_invert(t, target):
@@ -152,7 +158,7 @@ def _mmf4_jacobian(x, t):
     power = np.power(x, t[3])
     denominator = t[2] + power
     ratio = t[1] / denominator**2
-    return np.column_stack([np.ones_like(x), 1.0 / denominator, -ratio,
+    return _columns([np.ones_like(x), 1.0 / denominator, -ratio,
                             -ratio * power * np.log(x)])
 
 
@@ -181,7 +187,7 @@ def _wbl4_jacobian(x, t):
     shape = _box_cox(x, t[3])
     decay = np.exp(-t[2] * shape)
     shape_slope = (np.power(x, t[3]) * log_x - shape) / t[3]
-    return np.column_stack([np.ones_like(x), decay, -t[1] * shape * decay,
+    return _columns([np.ones_like(x), decay, -t[1] * shape * decay,
                             -t[1] * t[2] * shape_slope * decay])
 
 
@@ -235,104 +241,113 @@ FAMILIES: dict[str, Family] = {
 DEFAULT_FAMILIES: tuple[str, ...] = ("pow3", "pow4", "mmf4", "wbl4")
 
 
-# --- fitting one family ----------------------------------------------------
+# --- starting points ---------------------------------------------------------
 
-def _best_linear_start(x, y, w, basis: Callable[[np.ndarray, float], np.ndarray],
-                       rates: np.ndarray) -> tuple[float, float, float]:
-    """Scan a rate grid; for each rate fit (asymptote, amplitude) >= 0 by weighted NNLS."""
-    from scipy.optimize import nnls
+#: Rate grids scanned for starting points (pow3 exponents, exp3 rates).
+POW3_RATES = np.geomspace(0.02, 5.0, 30)
+EXP3_RATES = np.geomspace(0.05, 500.0, 40)
 
-    best = (math.inf, float(np.min(y)), 0.0, float(rates[0]))
-    for rate in rates:
-        design = np.column_stack([np.ones_like(x), basis(x, rate)]) * w[:, None]
-        coef, resid = nnls(design, y * w)
-        if resid < best[0]:
-            best = (resid, coef[0], coef[1], rate)
-    return best[1], best[2], best[3]
+
+def _scan_start(x, y, w, basis: Callable[[np.ndarray, np.ndarray], np.ndarray],
+                rates: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per row of (K, n): the rate whose non-negative (asymptote, amplitude) line fits best."""
+    from gridplan.batchfit import nonnegative_line
+
+    with np.errstate(all="ignore"):
+        shapes = basis(x[:, None, :], rates[None, :, None])          # (K, R, n)
+    a, b, rss = nonnegative_line(shapes, y[:, None, :], w[:, None, :])
+    pick = np.argmin(np.where(np.isfinite(rss), rss, np.inf), axis=1)
+    rows = np.arange(len(x))
+    found = np.isfinite(rss[rows, pick])
+    fallback = np.nanmin(np.where(w > 0, y, np.nan), axis=1)
+    return (np.where(found, a[rows, pick], fallback), np.where(found, b[rows, pick], 0.0),
+            np.where(found, rates[pick], rates[0]))
 
 
 def _starts(family: str, x, y, w) -> list[np.ndarray]:
-    """A few starting points for a family, derived from a pow3 grid scan."""
-    a3, b3, c3 = _best_linear_start(x, y, w, lambda x, c: x ** -c, np.geomspace(0.02, 5.0, 30))
-    drop = max(float(y[0] - a3), 1e-6 * max(abs(float(y[0])), _TINY))
-    x0 = float(x[0])
+    """Starting points for a family, each (K, p), derived from a pow3 rate scan.
+
+    Rows are problems with their points left-aligned (column 0 is the smallest size).
+    """
+    a3, b3, c3 = _scan_start(x, y, w, lambda x, c: x ** -c, POW3_RATES)
+    y0, x0 = y[:, 0], x[:, 0]
+    drop = np.maximum(y0 - a3, 1e-6 * np.maximum(np.abs(y0), _TINY))
     if family == "pow3":
-        return [np.array([a3, b3, c3])]
+        return [np.column_stack([a3, b3, c3])]
     if family == "exp3":
-        a, b, c = _best_linear_start(x, y, w, lambda x, c: np.exp(-c * x),
-                                     np.geomspace(0.05, 500.0, 40))
-        return [np.array([a, b, c])]
+        a, b, c = _scan_start(x, y, w, lambda x, c: np.exp(-c * x), EXP3_RATES)
+        return [np.column_stack([a, b, c])]
+    zeros = np.zeros_like(a3)
     if family == "pow4":
-        c = max(c3, 0.05)
-        b = max(b3, 1e-9) ** (-1.0 / c)
-        return [np.array([a3, b, c, 0.0]), np.array([0.5 * a3, 1.0 / drop, 1.0, 0.0])]
+        c = np.maximum(c3, 0.05)
+        b = np.maximum(b3, 1e-9) ** (-1.0 / c)
+        return [np.column_stack([a3, b, c, zeros]),
+                np.column_stack([0.5 * a3, 1.0 / drop, np.ones_like(a3), zeros])]
     if family == "mmf4":
-        return [np.array([a3, b3, 0.0, max(c3, 0.05)])] + [
-            np.array([a3, 2.0 * drop * x0 ** d, x0 ** d, d]) for d in (1.5,)]
+        d = 1.5
+        return [np.column_stack([a3, b3, zeros, np.maximum(c3, 0.05)]),
+                np.column_stack([a3, 2.0 * drop * x0 ** d, x0 ** d, np.full_like(a3, d)])]
     if family == "wbl4":
-        return [np.array([a3, b3, c3, 1e-3])] + [
-            np.array([a3, b3, c3 * d, d]) for d in (1.0,)]
+        return [np.column_stack([a3, b3, c3, np.full_like(a3, 1e-3)]),
+                np.column_stack([a3, b3, c3, np.ones_like(a3)])]
     raise GridplanError(f"Unknown curve family {family!r}; choose from {', '.join(FAMILIES)}.")
 
 
-def _fit_family(fam: Family, x, y, w, starts: Iterable[np.ndarray],
-                floor: float = 0.0) -> tuple[np.ndarray, float]:
-    """Weighted bounded least squares from each start; the lowest cost wins.
+def _fit_family(fam: Family, x, y, w, starts: list[np.ndarray],
+                floor: np.ndarray | float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+    """Fit one family to every row of (K, n) from each start; the lowest cost wins per row.
 
-    `floor` is a lower bound on the asymptote (theta[0] in every family).
+    `floor` (scalar or (K,)) bounds the asymptote, theta[:, 0], from below.
+    Rows whose every start failed get cost inf.
     """
-    from scipy.optimize import least_squares
+    from gridplan.batchfit import fit_batch
 
-    lower, upper = np.array(fam.lower, dtype=float), np.array(fam.upper, dtype=float)
-    lower[0] = max(lower[0], floor)
-
-    def residuals(theta):
-        return (fam.evaluate(x, theta) - y) * w
-
-    def jacobian(theta):
-        return fam.jacobian(x, theta) * w[:, None]
-
-    best_theta, best_cost = None, math.inf
+    lower = np.tile(np.array(fam.lower, dtype=float), (len(x), 1))
+    lower[:, 0] = np.maximum(lower[:, 0], floor)
+    upper = np.array(fam.upper, dtype=float)
+    best_theta = np.full((len(x), fam.n_params), np.nan)
+    best_cost = np.full(len(x), np.inf)
     for start in starts:
-        start = np.clip(np.nan_to_num(start, nan=1.0, posinf=1e6), lower,
-                        np.where(np.isfinite(upper), upper, 1e12))
-        try:
-            result = least_squares(residuals, start, bounds=(lower, upper), method="trf",
-                                   jac=jacobian if fam.jacobian else "2-point",
-                                   x_scale="jac", max_nfev=MAX_EVALUATIONS_PER_PARAM * len(start))
-        except (ValueError, FloatingPointError):
-            continue
-        if np.all(np.isfinite(result.x)) and result.cost < best_cost:
-            best_theta, best_cost = result.x, float(result.cost)
-    if best_theta is None:
-        raise GridplanError(f"The {fam.name} curve could not be fitted to these errors.")
+        theta, cost = fit_batch(fam.evaluate, fam.jacobian, x, y, w, start, lower, upper)
+        finite = np.all(np.isfinite(theta), axis=1)
+        better = finite & (cost < best_cost)
+        best_theta[better], best_cost[better] = theta[better], cost[better]
     return best_theta, best_cost
 
 
 # --- level and spread at each size ------------------------------------------
 
 def _row_means(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Mean of the finite values in each row (NaN for an empty row) and their count."""
-    counts = np.sum(np.isfinite(values), axis=1)
+    """Mean of the finite values along the last axis (NaN where none) and their count."""
+    counts = np.sum(np.isfinite(values), axis=-1)
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.nansum(values, axis=1) / counts, counts
+        return np.nansum(values, axis=-1) / counts, counts
 
 
 def _level_and_spread(errors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Mean over units and floored standard error of the mean, per size (rows)."""
+    """Mean over units and floored standard error of the mean, per size.
+
+    `errors` is (..., sizes, units); the floor is set per leading index from
+    that curve's own spreads. Sizes without any unit get a NaN level.
+    """
     level, counts = _row_means(errors)
     with np.errstate(invalid="ignore", divide="ignore"):
-        squares = np.nansum((errors - level[:, None]) ** 2, axis=1)
+        squares = np.nansum((errors - level[..., None]) ** 2, axis=-1)
         spread = np.sqrt(squares / (counts - 1) / counts)
     spread = np.where(counts > 1, spread, np.nan)
-    positive = spread[np.isfinite(spread) & (spread > 0)]
-    if positive.size:
-        spread = np.where(np.isfinite(spread), spread, positive.max())
-        floor = SE_FLOOR_FRACTION * float(np.median(positive))
-    else:
-        floor = 0.0
-    floor = max(floor, 1e-6 * float(np.nanmax(np.abs(level))), _TINY)
-    return level, np.maximum(np.nan_to_num(spread, nan=floor), floor)
+    positive = np.isfinite(spread) & (spread > 0)
+    has_positive = positive.any(axis=-1)
+    masked = np.where(positive, spread, np.nan)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        largest = np.nanmax(masked, axis=-1)
+        middle = np.nanmedian(masked, axis=-1)
+        top_level = np.nanmax(np.abs(level), axis=-1)
+    spread = np.where(np.isfinite(spread) | ~has_positive[..., None], spread, largest[..., None])
+    floor = np.where(has_positive, SE_FLOOR_FRACTION * middle, 0.0)
+    floor = np.maximum(np.maximum(floor, 1e-6 * np.nan_to_num(top_level)), _TINY)
+    return level, np.maximum(np.where(np.isfinite(spread), spread, floor[..., None]),
+                             floor[..., None])
 
 
 # --- results -----------------------------------------------------------------
@@ -435,7 +450,8 @@ class CurveFit:
         """Two-sided confidence band (low, high) for the error at size(s) m."""
         x = np.atleast_1d(np.asarray(m, dtype=float)) / self.scale
         fam = FAMILIES[self.family]
-        replicates = np.array([fam.evaluate(x, t) for t in self.boot_theta])
+        with np.errstate(all="ignore"):
+            replicates = fam.evaluate(x[None, :], self.boot_theta.T[:, :, None])
         low, high = self._band_from(fam.evaluate(x, self.theta), replicates, confidence)
         if np.ndim(m) == 0:
             return low[0], high[0]
@@ -560,48 +576,6 @@ def _as_matrix(sizes, fold_errors, name: str) -> tuple[np.ndarray, np.ndarray]:
     return sizes, errors
 
 
-def _choose_family(x, y, se, families: tuple[str, ...],
-                   floor: float = 0.0) -> tuple[str, dict[str, float | None]]:
-    """Pick the family that best predicts the largest sizes when fitted on the smaller ones."""
-    simplest = "pow3" if "pow3" in families else min(families, key=lambda k: FAMILIES[k].n_params)
-    if len(x) < MIN_SIZES_FOR_CHOICE or len(families) == 1:
-        return simplest, {name: None for name in families}
-    held = 1 if len(x) < 7 else 2
-    xf, yf, wf = x[:-held], y[:-held], 1.0 / se[:-held]
-    scores: dict[str, float | None] = {}
-    for name in families:
-        fam = FAMILIES[name]
-        if len(xf) < fam.n_params + 1:
-            scores[name] = None
-            continue
-        theta, _ = _fit_family(fam, xf, yf, wf, _starts(name, xf, yf, wf), floor)
-        scores[name] = float(np.mean(np.abs(fam.evaluate(x[-held:], theta) - y[-held:])))
-    scored = {k: v for k, v in scores.items() if v is not None}
-    if not scored:
-        return simplest, scores
-    best = min(scored.values())
-    noise = float(np.sqrt(np.mean(se[-held:] ** 2)))
-    margin = max((HOLDOUT_TIE_FACTOR - 1.0) * best, HOLDOUT_TIE_SE * noise)
-    tied = [k for k, v in scored.items() if v <= best + margin + _TINY]
-    chosen = min(tied, key=lambda k: (FAMILIES[k].n_params, families.index(k)))
-    return chosen, scores
-
-
-def _bootstrap(fam: Family, x, errors: np.ndarray, theta: np.ndarray, n_boot: int,
-               rng: np.random.Generator, floor: float = 0.0) -> np.ndarray:
-    """Refit the family, starting from `theta`, to `n_boot` resamples of whole units (columns)."""
-    n_units = errors.shape[1]
-    boot = []
-    for _ in range(n_boot):
-        picked = errors[:, rng.integers(0, n_units, n_units)]
-        keep = np.any(np.isfinite(picked), axis=1)
-        if keep.sum() < fam.n_params:
-            continue
-        level, spread = _level_and_spread(picked[keep])
-        boot.append(_fit_family(fam, x[keep], level, 1.0 / spread, [theta], floor)[0])
-    return np.array(boot).reshape(-1, fam.n_params)
-
-
 def _band_inflation(chi_square: float, dof: int, n_units: int) -> float:
     """Scale for bootstrap band widths, >= 1.
 
@@ -616,6 +590,173 @@ def _band_inflation(chi_square: float, dof: int, n_units: int) -> float:
     if dof > 0 and chi_square > chi2.ppf(MISFIT_LEVEL, dof):
         scale *= math.sqrt(chi_square / dof)
     return scale
+
+
+# --- fitting many settings at once ------------------------------------------------
+
+@dataclass
+class _Problem:
+    """One learning curve to fit: its usable sizes and (size x unit) error matrices."""
+
+    sizes: np.ndarray
+    errors: np.ndarray
+    train_mean: np.ndarray | None
+    setting: SettingInfo | None
+    n_repeats: int
+    seed: int | np.random.SeedSequence
+    asymptote_min: float = 0.0
+
+
+def _problem(sizes, fold_errors, train_fold_errors, setting, n_repeats, seed,
+             asymptote_min: float = 0.0) -> _Problem:
+    """Check and order one curve's data; a GridplanError says why it cannot be fitted."""
+    sizes_in = sizes
+    sizes, errors = _as_matrix(sizes, fold_errors, "validation")
+    order = np.argsort(sizes)
+    sizes, errors = sizes[order], errors[order]
+    usable = np.any(np.isfinite(errors), axis=1) & (sizes > 0)
+    sizes, errors = sizes[usable], errors[usable]
+    if len(np.unique(sizes)) != len(sizes):
+        raise GridplanError("Each training size must appear once in a learning curve.")
+    if len(sizes) < 3:
+        raise GridplanError(f"A learning curve needs at least 3 training sizes with results, got {len(sizes)}.")
+    if errors.shape[1] < 2:
+        raise GridplanError("The bootstrap needs at least two (repeat, fold) units per size.")
+    train_mean = None
+    if train_fold_errors is not None:
+        _, train = _as_matrix(sizes_in, train_fold_errors, "training")
+        train_mean = _row_means(train[order][usable])[0]
+    return _Problem(sizes, errors, train_mean, setting, max(1, int(n_repeats)), seed,
+                    float(asymptote_min))
+
+
+def _padded(rows: list[np.ndarray], width: int, fill: float) -> np.ndarray:
+    out = np.full((len(rows), width), fill)
+    for i, row in enumerate(rows):
+        out[i, :len(row)] = row
+    return out
+
+
+def _choose_families(x, y, se, counts, families: tuple[str, ...], floor) -> tuple[list, list]:
+    """Per curve: the family that best predicts its largest sizes when fitted on the smaller ones.
+
+    Curves with fewer than MIN_SIZES_FOR_CHOICE sizes (or a single family on
+    offer) take the simplest family. Returns (chosen names, hold-out scores).
+    """
+    simplest = "pow3" if "pow3" in families else min(families, key=lambda k: FAMILIES[k].n_params)
+    held = np.where(counts < 7, 1, 2)
+    columns = np.arange(x.shape[1])[None, :]
+    fit_mask = columns < (counts - held)[:, None]
+    held_mask = (columns >= (counts - held)[:, None]) & (columns < counts[:, None])
+    choosing = (counts >= MIN_SIZES_FOR_CHOICE) & (len(families) > 1)
+    scores = [{name: None for name in families} for _ in range(len(x))]
+    rows = np.flatnonzero(choosing)
+    for name in families:
+        fam = FAMILIES[name]
+        eligible = rows[(counts[rows] - held[rows]) >= fam.n_params + 1]
+        if eligible.size == 0:
+            continue
+        xs, ys = x[eligible], y[eligible]
+        ws = np.where(fit_mask[eligible], 1.0 / se[eligible], 0.0)
+        theta, cost = _fit_family(fam, xs, ys, ws, _starts(name, xs, ys, ws),
+                                  np.asarray(floor)[eligible])
+        with np.errstate(all="ignore"):
+            predicted = fam.evaluate(xs, theta.T[:, :, None])
+        gaps = np.where(held_mask[eligible], np.abs(predicted - ys), 0.0).sum(axis=1)
+        gaps = gaps / held[eligible]
+        for row, gap, c in zip(eligible, gaps, cost):
+            if np.isfinite(c) and np.isfinite(gap):
+                scores[row][name] = float(gap)
+    chosen = []
+    for row in range(len(x)):
+        scored = {k: v for k, v in scores[row].items() if v is not None}
+        if not choosing[row] or not scored:
+            chosen.append(simplest)
+            continue
+        best = min(scored.values())
+        last = held_mask[row]
+        noise = float(np.sqrt(np.mean(se[row][last] ** 2)))
+        margin = max((HOLDOUT_TIE_FACTOR - 1.0) * best, HOLDOUT_TIE_SE * noise)
+        tied = [k for k, v in scored.items() if v <= best + margin + _TINY]
+        chosen.append(min(tied, key=lambda k: (FAMILIES[k].n_params, families.index(k))))
+    return chosen, scores
+
+
+def _bootstrap_levels(problem: _Problem, n_boot: int, width: int):
+    """Level, weights and usability of `n_boot` resamples of a curve's units, padded to `width`."""
+    rng = np.random.default_rng(problem.seed)
+    n_sizes, n_units = problem.errors.shape
+    picks = rng.integers(0, n_units, (n_boot, n_units))
+    picked = problem.errors[:, picks].transpose(1, 0, 2)            # (B, sizes, units)
+    level, spread = _level_and_spread(picked)
+    keep = np.isfinite(level)
+    y = np.zeros((n_boot, width))
+    w = np.zeros((n_boot, width))
+    y[:, :n_sizes] = np.where(keep, level, 0.0)
+    w[:, :n_sizes] = np.where(keep, 1.0 / spread, 0.0)
+    return y, w, keep.sum(axis=1)
+
+
+def _fit_problems(problems: list[_Problem], families: tuple[str, ...],
+                  n_boot: int) -> list[CurveFit | str]:
+    """Fit every curve: family choice, main fit and bootstrap, all batched across curves."""
+    if not problems:
+        return []
+    width = max(len(p.sizes) for p in problems)
+    counts = np.array([len(p.sizes) for p in problems])
+    scales = np.array([float(p.sizes[-1]) for p in problems])
+    x = _padded([p.sizes / p.sizes[-1] for p in problems], width, 1.0)
+    levels, spreads = zip(*(_level_and_spread(p.errors) for p in problems))
+    y = _padded(list(levels), width, 0.0)
+    se = _padded(list(spreads), width, 1.0)
+    present = np.arange(width)[None, :] < counts[:, None]
+    w = np.where(present, 1.0 / se, 0.0)
+    floors = np.array([p.asymptote_min for p in problems])
+    chosen, scores = _choose_families(x, y, se, counts, families, floors)
+
+    results: list[CurveFit | str] = ["not fitted"] * len(problems)
+    for name in dict.fromkeys(chosen):
+        fam = FAMILIES[name]
+        rows = np.array([i for i, c in enumerate(chosen) if c == name])
+        theta, cost = _fit_family(fam, x[rows], y[rows], w[rows],
+                                  _starts(name, x[rows], y[rows], w[rows]), floors[rows])
+        boot_y, boot_w, boot_ok = zip(*(_bootstrap_levels(problems[i], n_boot, width)
+                                        for i in rows))
+        start = np.repeat(np.nan_to_num(theta, nan=1.0), n_boot, axis=0)
+        boot_theta, boot_cost = _fit_family(
+            fam, np.repeat(x[rows], n_boot, axis=0), np.concatenate(boot_y),
+            np.concatenate(boot_w), [start], np.repeat(floors[rows], n_boot))
+        boot_theta = boot_theta.reshape(len(rows), n_boot, fam.n_params)
+        boot_cost = boot_cost.reshape(len(rows), n_boot)
+        for j, i in enumerate(rows):
+            problem = problems[i]
+            if not np.isfinite(cost[j]):
+                results[i] = f"The {name} curve could not be fitted to these errors."
+                continue
+            good = np.isfinite(boot_cost[j]) & (np.asarray(boot_ok[j]) >= fam.n_params)
+            if good.sum() < 2:
+                results[i] = "Too few bootstrap resamples could be fitted; the curve has too many gaps."
+                continue
+            n_units = problem.errors.shape[1]
+            dof = counts[i] - fam.n_params
+            results[i] = CurveFit(
+                family=name, theta=theta[j], scale=float(scales[i]), sizes=problem.sizes,
+                validation_mean=y[i, :counts[i]].copy(), validation_se=se[i, :counts[i]].copy(),
+                train_mean=problem.train_mean, boot_theta=boot_theta[j][good], n_units=n_units,
+                inflation=_band_inflation(2.0 * float(cost[j]), int(dof), n_units),
+                holdout_errors=scores[i], setting=problem.setting,
+                asymptote_min=problem.asymptote_min, n_repeats=problem.n_repeats)
+    return results
+
+
+def _check_families(families: Iterable[str]) -> tuple[str, ...]:
+    families = tuple(families)
+    for name in families:
+        if name not in FAMILIES:
+            raise GridplanError(f"Unknown curve family {name!r}; choose from {', '.join(FAMILIES)}.")
+    if not families:
+        raise GridplanError("At least one curve family is needed.")
+    return families
 
 
 def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
@@ -635,52 +776,15 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
     units (deterministic given `seed`). `n_repeats` says how many of the units
     are repeats of one pass over the same rows (see `CurveFit.unseen_se`).
     """
-    families = tuple(families)
-    for name in families:
-        if name not in FAMILIES:
-            raise GridplanError(f"Unknown curve family {name!r}; choose from {', '.join(FAMILIES)}.")
-    if not families:
-        raise GridplanError("At least one curve family is needed.")
+    families = _check_families(families)
     if n_boot < 2:
         raise GridplanError(f"The bootstrap needs at least 2 resamples, got {n_boot}.")
-    sizes_in = sizes
-    sizes, errors = _as_matrix(sizes, fold_errors, "validation")
-    order = np.argsort(sizes)
-    sizes, errors = sizes[order], errors[order]
-    usable = np.any(np.isfinite(errors), axis=1) & (sizes > 0)
-    sizes, errors = sizes[usable], errors[usable]
-    if len(np.unique(sizes)) != len(sizes):
-        raise GridplanError("Each training size must appear once in a learning curve.")
-    if len(sizes) < 3:
-        raise GridplanError(f"A learning curve needs at least 3 training sizes with results, got {len(sizes)}.")
-    n_units = errors.shape[1]
-    if n_units < 2:
-        raise GridplanError("The bootstrap needs at least two (repeat, fold) units per size.")
-    train_mean = None
-    if train_fold_errors is not None:
-        _, train = _as_matrix(sizes_in, train_fold_errors, "training")
-        train = train[order][usable]
-        train_mean = _row_means(train)[0]
-
-    scale = float(sizes[-1])
-    x = sizes / scale
-    level, spread = _level_and_spread(errors)
-    family, holdout = _choose_family(x, level, spread, families, asymptote_min)
-    fam = FAMILIES[family]
-    theta, cost = _fit_family(fam, x, level, 1.0 / spread, _starts(family, x, level, 1.0 / spread),
-                              asymptote_min)
-
-    dof = len(x) - fam.n_params
-    inflation = _band_inflation(2.0 * cost, dof, n_units)
-
-    boot = _bootstrap(fam, x, errors, theta, n_boot, np.random.default_rng(seed), asymptote_min)
-    if len(boot) < 2:
-        raise GridplanError("Too few bootstrap resamples could be fitted; the curve has too many gaps.")
-    return CurveFit(family=family, theta=theta, scale=scale, sizes=sizes,
-                    validation_mean=level, validation_se=spread, train_mean=train_mean,
-                    boot_theta=np.array(boot), n_units=n_units, inflation=inflation,
-                    holdout_errors=holdout, setting=setting, asymptote_min=asymptote_min,
-                    n_repeats=max(1, int(n_repeats)))
+    problem = _problem(sizes, fold_errors, train_fold_errors, setting, n_repeats, seed,
+                       asymptote_min)
+    result = _fit_problems([problem], families, n_boot)[0]
+    if isinstance(result, str):
+        raise GridplanError(result)
+    return result
 
 
 # --- a whole grid ----------------------------------------------------------------
@@ -777,50 +881,62 @@ def _setting_matrices(rows: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.nd
             training.to_numpy(dtype=float))
 
 
-def _fit_one(info: SettingInfo, rows: pd.DataFrame, families, n_boot: int,
-             seed: np.random.SeedSequence, asymptote_min: float = 0.0) -> CurveFit | dict:
-    """Fit one setting, or describe why it could not be fitted."""
-    try:
-        if rows.empty:
-            raise GridplanError("no rows with status 'ok'")
-        sizes, validation, training = _setting_matrices(rows)
-        return fit_setting(sizes, validation, training, families=families, n_boot=n_boot,
-                           seed=seed, setting=info, asymptote_min=asymptote_min,
-                           n_repeats=rows["repeat"].nunique())
-    except GridplanError as problem:
-        return {"capacity_index": info.capacity_index,
-                "regularization_index": info.regularization_index,
-                "capacity": info.capacity, "regularization": info.regularization,
-                "skipped_rows": info.skipped_rows, "reason": str(problem)}
+def _unfitted(info: SettingInfo, reason: str) -> dict:
+    return {"capacity_index": info.capacity_index,
+            "regularization_index": info.regularization_index,
+            "capacity": info.capacity, "regularization": info.regularization,
+            "skipped_rows": info.skipped_rows, "reason": reason}
+
+
+def _fit_settings(settings: list[tuple[SettingInfo, pd.DataFrame, np.random.SeedSequence]],
+                  families: tuple[str, ...], n_boot: int,
+                  asymptote_min: float = 0.0) -> list[CurveFit | dict]:
+    """Fit the given settings together; a dict describes each one that could not be fitted."""
+    results: list[CurveFit | dict | None] = [None] * len(settings)
+    problems, where = [], []
+    for i, (info, rows, seed) in enumerate(settings):
+        try:
+            if rows.empty:
+                raise GridplanError("no rows with status 'ok'")
+            sizes, validation, training = _setting_matrices(rows)
+            problems.append(_problem(sizes, validation, training, info,
+                                     rows["repeat"].nunique(), seed, asymptote_min))
+            where.append(i)
+        except GridplanError as problem:
+            results[i] = _unfitted(info, str(problem))
+    for i, fitted in zip(where, _fit_problems(problems, families, n_boot)):
+        results[i] = _unfitted(settings[i][0], fitted) if isinstance(fitted, str) else fitted
+    return results
 
 
 def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
-             n_boot: int = DEFAULT_BOOT, seed: int = 0, n_jobs: int = 1,
-             share_floor: bool = True) -> GridCurves:
+             n_boot: int = DEFAULT_BOOT, seed: int = 0, share_floor: bool = True) -> GridCurves:
     """Fit a learning curve for every (capacity, regularisation) setting of a grid.
 
     Only rows with status "ok" are used; the others are counted per setting.
     Each setting's bootstrap is seeded from (seed, capacity_index,
-    regularization_index), so results do not depend on order or `n_jobs`.
-    With `share_floor`, the noise floor is estimated from the well-determined
-    settings (`shared_floor`) and every setting whose asymptote fell below the
-    floor's lower band edge is refitted with its asymptote bounded there.
+    regularization_index), so results do not depend on order. All settings
+    are fitted together (`gridplan.batchfit`). With `share_floor`, the noise
+    floor is estimated from the well-determined settings (`shared_floor`) and
+    every setting whose asymptote fell below the floor's lower band edge is
+    refitted with its asymptote bounded there.
     """
     missing = [c for c in CELL_COLUMNS if c not in cells.columns]
     if missing:
         raise GridplanError(f"The cells table lacks the column(s): {', '.join(missing)}.")
     if cells.empty:
         raise GridplanError("The cells table is empty, so there are no learning curves to fit.")
-    families = tuple(families)
-    jobs = []
+    families = _check_families(families)
+    if n_boot < 2:
+        raise GridplanError(f"The bootstrap needs at least 2 resamples, got {n_boot}.")
+    settings = []
     for (cap, reg), rows in cells.groupby(["capacity_index", "regularization_index"], sort=True):
         ok = rows["status"] == "ok"
         info = SettingInfo(int(cap), int(reg), str(rows["capacity"].iloc[0]),
                            str(rows["regularization"].iloc[0]), int((~ok).sum()))
-        jobs.append((info, rows[ok], families, n_boot,
-                     np.random.SeedSequence([int(seed), int(cap), int(reg)])))
+        settings.append((info, rows[ok], np.random.SeedSequence([int(seed), int(cap), int(reg)])))
     grid = GridCurves()
-    for (info, *_), result in zip(jobs, _run_fits(jobs, n_jobs)):
+    for (info, *_), result in zip(settings, _fit_settings(settings, families, n_boot)):
         if isinstance(result, CurveFit):
             grid[(info.capacity_index, info.regularization_index)] = result
         else:
@@ -828,21 +944,13 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
     grid.floor = shared_floor(grid) if grid else None
     if share_floor and grid.floor is not None:
         bound = grid.floor.low
-        again = [job + (bound,) for job in jobs
+        again = [job for job in settings
                  if (key := (job[0].capacity_index, job[0].regularization_index)) in grid
                  and grid[key].asymptote < bound]
-        for (info, *_), result in zip(again, _run_fits(again, n_jobs)):
+        for (info, *_), result in zip(again, _fit_settings(again, families, n_boot, bound)):
             if isinstance(result, CurveFit):
                 grid[(info.capacity_index, info.regularization_index)] = result
     return grid
-
-
-def _run_fits(jobs: list[tuple], n_jobs: int) -> list:
-    """Fit the settings of `jobs`, in this process or with joblib workers."""
-    if n_jobs == 1 or len(jobs) < 2:
-        return [_fit_one(*job) for job in jobs]
-    from joblib import Parallel, delayed
-    return Parallel(n_jobs=n_jobs)(delayed(_fit_one)(*job) for job in jobs)
 
 
 # --- summary ----------------------------------------------------------------------
