@@ -18,7 +18,7 @@ import pandas as pd
 
 from gridplan.api import open_run
 from gridplan.config import Costs
-from gridplan.curves import DEFAULT_BOOT, DEFAULT_MAX_SIZE, GridCurves, fit_grid
+from gridplan.curves import DEFAULT_BOOT, DEFAULT_MAX_SIZE, GridCurves
 from gridplan.diagnosis import (
     NoiseFloor,
     Thresholds,
@@ -231,7 +231,8 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         return f"{capacity_labels[ci]},{regularization_labels[ri]}"
 
     if curves is None:
-        curves = fit_grid(cells, n_boot=n_boot, seed=seed)
+        from gridplan.curvestore import cached_curves
+        curves = cached_curves(run_dir, cells, n_boot=n_boot, seed=seed)
     test_sizes = run.meta.get("test_sizes") or []
     n_test = float(np.mean(test_sizes)) if test_sizes else float(
         run.meta.get("n_rows", 0)) / max(int(run.meta.get("folds", 5)), 1)

@@ -11,15 +11,17 @@ import os
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterator
+from typing import TYPE_CHECKING, Iterator
 
 import pandas as pd
 
 from gridplan.checks import check_path_text
 from gridplan.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
 from gridplan.errors import GridplanError
-from gridplan.spec import GridSpec, identity_difference, resolve
 from gridplan.store import CONFIG_COPY, STORE_NAME, Store
+
+if TYPE_CHECKING:   # the grid side (scikit-learn) is imported only where a grid is resolved
+    from gridplan.spec import GridSpec
 
 LOCK_NAME = "run.lock"
 DEFAULT_OUTPUTS = Path("outputs")
@@ -84,7 +86,7 @@ def prepare_run_dir(spec: GridSpec, run_dir: Path) -> Store:
         if old is not None and old != identity:
             store.close()
             raise GridplanError(
-                f"{run_dir} holds a run of a different grid ({identity_difference(old, identity)} "
+                f"{run_dir} holds a run of a different grid ({_difference(old, identity)} "
                 f"changed); pass --out NEW_FOLDER for a new run, or delete the folder to start over.")
     c = spec.config
     store.set_meta({
@@ -108,6 +110,11 @@ def prepare_run_dir(spec: GridSpec, run_dir: Path) -> Store:
     return store
 
 
+def _difference(old: dict, new: dict) -> str:
+    from gridplan.spec import identity_difference
+    return identity_difference(old, new)
+
+
 def _values(axis) -> list:
     if axis.feature_sets is not None:
         return [list(s) for s in axis.feature_sets]
@@ -121,6 +128,7 @@ def run(config: Config | str | Path, *, out: str | Path | None = None, jobs: int
     from gridplan.runner import run_grid
     if not isinstance(config, Config):
         config = load_config(config)
+    from gridplan.spec import resolve
     spec = spec or resolve(config, allow_any_import=allow_any_estimator)
     run_dir = Path(out) if out is not None else default_run_dir(config)
     check_path_text(run_dir, "run folder")
@@ -183,7 +191,7 @@ def open_run(run_dir: str | Path) -> Run:
 
 #: Files of a run folder that an export may never replace.
 RUN_FILES = (STORE_NAME, f"{STORE_NAME}-wal", f"{STORE_NAME}-shm", f"{STORE_NAME}-journal",
-             CONFIG_COPY, LOCK_NAME)
+             CONFIG_COPY, LOCK_NAME, "curves.json")
 EXPORTS_KEY = "exports"   # store meta: resolved path -> sha256 of each export written
 
 
@@ -248,16 +256,17 @@ def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> 
     """Validate a config against its data and return the resolved grid."""
     if not isinstance(config, Config):
         config = load_config(config)
+    from gridplan.spec import resolve
     return resolve(config, allow_any_import=allow_any_estimator)
 
 
 def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0):
     """Fit a learning curve per setting of a run (see gridplan.curves.fit_grid)."""
-    from gridplan.curves import fit_grid
+    from gridplan.curvestore import cached_curves
     cells = open_run(run_dir).cells()
     if cells.empty:
         raise GridplanError(f"{run_dir} holds no finished fits yet; run the grid first.")
-    return fit_grid(cells, n_boot=n_boot, seed=seed)
+    return cached_curves(run_dir, cells, n_boot=n_boot, seed=seed)
 
 
 def curves_report(run_dir: str | Path, *, target: float | None = None,

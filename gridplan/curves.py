@@ -584,10 +584,10 @@ def _band_inflation(chi_square: float, dof: int, n_units: int) -> float:
     the weighted residuals show the family does not fit (chi-square above
     its MISFIT_LEVEL quantile) widths also grow by sqrt(chi-square / dof).
     """
-    from scipy.stats import chi2
+    from scipy.special import chdtri
 
     scale = math.sqrt(n_units / (n_units - 1))
-    if dof > 0 and chi_square > chi2.ppf(MISFIT_LEVEL, dof):
+    if dof > 0 and chi_square > chdtri(dof, 1.0 - MISFIT_LEVEL):
         scale *= math.sqrt(chi_square / dof)
     return scale
 
@@ -868,17 +868,53 @@ class GridCurves(dict):
         super().__init__(*args, **kwargs)
         self.unfitted: list[dict] = list(unfitted or [])
         self.floor: SharedFloor | None = None
+        self.from_cache = False     # read back from the run folder (gridplan.curvestore)
 
 
-def _setting_matrices(rows: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Sizes and (size x unit) validation / training error matrices of one setting's usable rows."""
-    validation = rows.pivot_table(index="train_size", columns=["repeat", "fold"],
-                                  values="validation_error", aggfunc="mean", dropna=False)
-    training = rows.pivot_table(index="train_size", columns=["repeat", "fold"],
-                                values="train_error", aggfunc="mean", dropna=False)
-    training = training.reindex(index=validation.index, columns=validation.columns)
-    return (validation.index.to_numpy(dtype=float), validation.to_numpy(dtype=float),
-            training.to_numpy(dtype=float))
+@dataclass(frozen=True)
+class _SettingData:
+    """One setting's usable measurements as (size x unit) matrices."""
+
+    info: SettingInfo
+    sizes: np.ndarray
+    validation: np.ndarray
+    training: np.ndarray
+    n_repeats: int
+    seed: np.random.SeedSequence
+
+
+def _settings_data(cells: pd.DataFrame, seed: int) -> list[_SettingData]:
+    """Every setting's matrices, built from the cells table in one pass."""
+    keys = cells[["capacity_index", "regularization_index"]].to_numpy(dtype=np.int64)
+    settings, setting_of = np.unique(keys, axis=0, return_inverse=True)
+    setting_of = setting_of.reshape(-1)
+    ok = (cells["status"] == "ok").to_numpy()
+    sizes, size_of = np.unique(cells["train_size"].to_numpy(dtype=float), return_inverse=True)
+    unit_pairs = cells[["repeat", "fold"]].to_numpy(dtype=np.int64)
+    units, unit_of = np.unique(unit_pairs, axis=0, return_inverse=True)
+    unit_of = unit_of.reshape(-1)
+    shape = (len(settings), len(sizes), len(units))
+    validation, training = np.full(shape, np.nan), np.full(shape, np.nan)
+    picked = (setting_of[ok], size_of.reshape(-1)[ok], unit_of[ok])
+    validation[picked] = cells["validation_error"].to_numpy(dtype=float)[ok]
+    training[picked] = cells["train_error"].to_numpy(dtype=float)[ok]
+    measured = np.zeros(shape, dtype=bool)
+    measured[picked] = True
+    first = pd.Series(np.arange(len(cells))).groupby(setting_of).first().to_numpy()
+    skipped = np.bincount(setting_of[~ok], minlength=len(settings))
+    capacity = cells["capacity"].to_numpy()
+    regularization = cells["regularization"].to_numpy()
+    out = []
+    for s, (cap, reg) in enumerate(settings):
+        info = SettingInfo(int(cap), int(reg), str(capacity[first[s]]),
+                           str(regularization[first[s]]), int(skipped[s]))
+        rows = measured[s].any(axis=1)
+        cols = measured[s].any(axis=0)
+        out.append(_SettingData(
+            info, sizes[rows], validation[s][np.ix_(rows, cols)],
+            training[s][np.ix_(rows, cols)], len(np.unique(units[cols, 0])),
+            np.random.SeedSequence([int(seed), int(cap), int(reg)])))
+    return out
 
 
 def _unfitted(info: SettingInfo, reason: str) -> dict:
@@ -888,24 +924,22 @@ def _unfitted(info: SettingInfo, reason: str) -> dict:
             "skipped_rows": info.skipped_rows, "reason": reason}
 
 
-def _fit_settings(settings: list[tuple[SettingInfo, pd.DataFrame, np.random.SeedSequence]],
-                  families: tuple[str, ...], n_boot: int,
+def _fit_settings(settings: list[_SettingData], families: tuple[str, ...], n_boot: int,
                   asymptote_min: float = 0.0) -> list[CurveFit | dict]:
     """Fit the given settings together; a dict describes each one that could not be fitted."""
     results: list[CurveFit | dict | None] = [None] * len(settings)
     problems, where = [], []
-    for i, (info, rows, seed) in enumerate(settings):
+    for i, data in enumerate(settings):
         try:
-            if rows.empty:
+            if data.sizes.size == 0:
                 raise GridplanError("no rows with status 'ok'")
-            sizes, validation, training = _setting_matrices(rows)
-            problems.append(_problem(sizes, validation, training, info,
-                                     rows["repeat"].nunique(), seed, asymptote_min))
+            problems.append(_problem(data.sizes, data.validation, data.training, data.info,
+                                     data.n_repeats, data.seed, asymptote_min))
             where.append(i)
         except GridplanError as problem:
-            results[i] = _unfitted(info, str(problem))
+            results[i] = _unfitted(data.info, str(problem))
     for i, fitted in zip(where, _fit_problems(problems, families, n_boot)):
-        results[i] = _unfitted(settings[i][0], fitted) if isinstance(fitted, str) else fitted
+        results[i] = _unfitted(settings[i].info, fitted) if isinstance(fitted, str) else fitted
     return results
 
 
@@ -929,14 +963,10 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
     families = _check_families(families)
     if n_boot < 2:
         raise GridplanError(f"The bootstrap needs at least 2 resamples, got {n_boot}.")
-    settings = []
-    for (cap, reg), rows in cells.groupby(["capacity_index", "regularization_index"], sort=True):
-        ok = rows["status"] == "ok"
-        info = SettingInfo(int(cap), int(reg), str(rows["capacity"].iloc[0]),
-                           str(rows["regularization"].iloc[0]), int((~ok).sum()))
-        settings.append((info, rows[ok], np.random.SeedSequence([int(seed), int(cap), int(reg)])))
+    settings = _settings_data(cells, seed)
     grid = GridCurves()
-    for (info, *_), result in zip(settings, _fit_settings(settings, families, n_boot)):
+    for data, result in zip(settings, _fit_settings(settings, families, n_boot)):
+        info = data.info
         if isinstance(result, CurveFit):
             grid[(info.capacity_index, info.regularization_index)] = result
         else:
@@ -944,12 +974,12 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
     grid.floor = shared_floor(grid) if grid else None
     if share_floor and grid.floor is not None:
         bound = grid.floor.low
-        again = [job for job in settings
-                 if (key := (job[0].capacity_index, job[0].regularization_index)) in grid
+        again = [data for data in settings
+                 if (key := (data.info.capacity_index, data.info.regularization_index)) in grid
                  and grid[key].asymptote < bound]
-        for (info, *_), result in zip(again, _fit_settings(again, families, n_boot, bound)):
+        for data, result in zip(again, _fit_settings(again, families, n_boot, bound)):
             if isinstance(result, CurveFit):
-                grid[(info.capacity_index, info.regularization_index)] = result
+                grid[(data.info.capacity_index, data.info.regularization_index)] = result
     return grid
 
 

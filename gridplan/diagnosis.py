@@ -31,7 +31,7 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from gridplan.curves import CurveFit
 from gridplan.errors import GridplanError
@@ -105,11 +105,11 @@ def corrected_t_test(differences, n_train: float, n_test: float,
     dof = d.size - 1
     if se > 0:
         t = mean / se
-        p = float(stats.t.sf(t, dof))
+        p = float(special.stdtr(dof, -t))
     else:
         t = math.copysign(math.inf, mean) if mean else 0.0
         p = 0.0 if mean > 0 else 1.0
-    half = float(stats.t.ppf(0.5 + confidence / 2, dof)) * se
+    half = float(special.stdtrit(dof, 0.5 + confidence / 2)) * se
     return CorrectedTest(mean, se, factor, dof, float(t), p, mean - half, mean + half, confidence)
 
 

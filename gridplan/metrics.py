@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import numpy as np
-from sklearn import metrics as skm
 
 REGRESSION_METRICS = ("mse", "rmse", "mae")
 CLASSIFICATION_METRICS = ("error_rate", "log_loss")
@@ -31,6 +30,7 @@ def needs_proba(metric: str) -> bool:
 def error_of(metric: str, y_true: np.ndarray, prediction: np.ndarray,
              labels: np.ndarray | None = None) -> float:
     """Error of a prediction; for log loss `prediction` holds one column per label."""
+    from sklearn import metrics as skm   # imported here: deciding commands never need it
     if metric == "mse":
         return float(skm.mean_squared_error(y_true, prediction))
     if metric == "rmse":
