@@ -151,9 +151,14 @@ class SettingDiagnosis:
         return _plain(asdict(self))
 
 
-def _unit_errors(rows: pd.DataFrame, column: str) -> pd.Series:
-    """Per-(repeat, fold) errors of one cell, indexed by (repeat, fold)."""
-    return rows.set_index(["repeat", "fold"])[column].astype(float)
+#: (repeat, fold) pairs are coded as one integer, repeat * UNIT_STRIDE + fold.
+UNIT_STRIDE = 1 << 20
+
+
+def _mean(values: np.ndarray) -> float:
+    """Mean of the non-missing values (NaN when there are none)."""
+    kept = values[~np.isnan(values)]
+    return float(kept.mean()) if kept.size else math.nan
 
 
 def split_excess(validation_error: float, target: float, fit: CurveFit | None,
@@ -216,22 +221,27 @@ def diagnose_setting(rows: pd.DataFrame, fit: CurveFit | None, *, target: float,
     ok = rows[rows["status"] == "ok"]
     if ok.empty:
         raise GridplanError("a setting has no successful cells to diagnose.")
-    sizes = sorted(int(s) for s in ok["train_size"].unique())
+    cell_sizes = ok["train_size"].to_numpy(dtype=np.int64)
+    units = ok["repeat"].to_numpy(dtype=np.int64) * UNIT_STRIDE + ok["fold"].to_numpy(dtype=np.int64)
+    train_all = ok["train_error"].to_numpy(dtype=float)
+    valid_all = ok["validation_error"].to_numpy(dtype=float)
+    sizes = sorted(int(s) for s in np.unique(cell_sizes))
     m = sizes[-1] if size is None else int(size)
     if m not in sizes:
         raise GridplanError(f"training size {m} has no successful cells for this setting.")
-    here = ok[ok["train_size"] == m]
-    train = _unit_errors(here, "train_error")
-    valid = _unit_errors(here, "validation_error")
-    train_error, validation_error = float(train.mean()), float(valid.mean())
-    gap_test = corrected_t_test((valid - train).to_numpy(), m, n_test, confidence)
+    here = cell_sizes == m
+    train, valid = train_all[here], valid_all[here]
+    train_error, validation_error = _mean(train), _mean(valid)
+    gap_test = corrected_t_test(valid - train, m, n_test, confidence)
 
     previous = max((s for s in sizes if s < m), default=None)
     drop = None
     if previous is not None:
-        before = _unit_errors(ok[ok["train_size"] == previous], "validation_error")
-        paired = (before - valid).dropna() / math.log2(m / previous)
-        drop = corrected_t_test(paired.to_numpy(), m, n_test, confidence)
+        before = cell_sizes == previous
+        _, at_before, at_here = np.intersect1d(units[before], units[here], return_indices=True)
+        paired = valid_all[before][at_before] - valid[at_here]
+        paired = paired[~np.isnan(paired)] / math.log2(m / previous)
+        drop = corrected_t_test(paired, m, n_test, confidence)
     curve_drop = float(fit.predict(m) - fit.predict(2 * m)) if fit is not None else None
     flat = None
     if drop is not None:
