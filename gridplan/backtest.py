@@ -84,7 +84,8 @@ def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None =
             "full_size": int(full), "rows": rows,
             "median_abs_rel_error": float(np.median(rel)) if rel else None,
             "coverage": float(np.mean([r["inside_band"] for r in rows])),
-            "unfitted": list(fits.unfitted)}
+            "unfitted": list(fits.unfitted),
+            "calibration": fits.calibration.as_dict() if fits.calibration is not None else None}
 
 
 def render_backtest(result: dict) -> str:

@@ -6,8 +6,8 @@ parameters. Solving them one scipy call at a time costs far more in Python
 overhead than in arithmetic, so here they are stacked: problem k has sizes
 x[k], errors y[k] and weights w[k] (weight 0 marks a missing point), and one
 Levenberg-Marquardt iteration updates all of them with batched linear algebra
-(Marquardt's diagonal damping, Nocedal & Wright, Numerical Optimization,
-2nd ed., section 10.3). Bounds are kept by projection: a parameter at a bound
+(damping on the Jacobi-scaled normal equations, Nocedal & Wright, Numerical
+Optimization, 2nd ed., section 10.3). Bounds are kept by projection: a parameter at a bound
 whose gradient points outward is held fixed for that step, the others take
 the damped Gauss-Newton step, clipped to the box.
 """
@@ -77,14 +77,15 @@ def fit_batch(evaluate, jacobian, x: np.ndarray, y: np.ndarray, w: np.ndarray,
         hessian = np.einsum("knp,knq->kpq", jac, jac)
         pinned = ((th <= lo) & (gradient > 0)) | ((th >= hi) & (gradient < 0))
         free = ~pinned
+        # Jacobi scaling (each parameter by the norm of its Jacobian column), so
+        # that parameters of very different sensitivity stay well conditioned.
         diag = np.diagonal(hessian, axis1=1, axis2=2)
-        scale = np.maximum(diag, 1e-12 * np.maximum(diag.max(axis=1, keepdims=True), 1e-300))
+        norm = np.where(diag > 1e-300, np.sqrt(np.maximum(diag, 1e-300)), 1.0)
+        scaled = hessian / (norm[:, :, None] * norm[:, None, :])
         both_free = free[:, :, None] & free[:, None, :]
-        system = np.where(both_free, hessian, 0.0)
-        system = system + (damping[idx, None] * scale)[:, :, None] * eye
-        system = system + pinned[:, :, None] * eye
-        rhs = np.where(free, -gradient, 0.0)
-        step = _solve(system, rhs)
+        system = np.where(both_free, scaled, 0.0) + (damping[idx, None, None] + pinned[:, :, None]) * eye
+        rhs = np.where(free, -gradient / norm, 0.0)
+        step = _solve(system, rhs) / norm
         candidate = np.clip(th + step, lo, hi)
         new_cost = cost_of(evaluate, xs, ys, ws, candidate)
         old_cost = cost[idx]

@@ -74,6 +74,9 @@ DEFAULT_MAX_SIZE = 1e12
 #: converged by then keeps its best point so far.
 MAX_EVALUATIONS_PER_PARAM = 40
 
+#: Points of the grid on which calibrated forecasts are made monotone beyond the data.
+MONOTONE_GRID = 256
+
 _TINY = 1e-12
 
 
@@ -400,6 +403,13 @@ class CurveFit:
     setting: SettingInfo | None = None
     asymptote_min: float = 0.0     # lower bound imposed on the asymptote (shared floor)
     n_repeats: int = 1             # repeats among the units: passes over the same rows
+    #: Calibration from this run's own past extrapolations (gridplan.calibration).
+    #: Beyond the largest measured size the curve forecasts a further drop D;
+    #: `drop_lean` of it is taken back (0 <= lean <= 1; this run's curves have
+    #: fallen less than forecast) and `drop_spread` x D is the shape error's
+    #: standard deviation, added to the band.
+    drop_lean: float = 0.0
+    drop_spread: float = 0.0
 
     @property
     def unseen_se(self) -> float:
@@ -426,10 +436,32 @@ class CurveFit:
         """The fitted error as m -> infinity (noise-floor estimate)."""
         return float(self.theta[0])
 
-    def predict(self, m) -> np.ndarray:
-        """Fitted validation error at training size(s) m."""
+    def raw_predict(self, m) -> np.ndarray:
+        """The fitted family's own value at training size(s) m, without calibration."""
         x = np.asarray(m, dtype=float) / self.scale
         return FAMILIES[self.family].evaluate(x, self.theta)
+
+    def drop_beyond_data(self, m) -> np.ndarray:
+        """The fitted curve's further drop from the largest measured size to m (0 inside the data)."""
+        last = self.raw_predict(float(self.sizes[-1]))
+        m = np.asarray(m, dtype=float)
+        return np.where(m > self.sizes[-1], np.maximum(last - self.raw_predict(m), 0.0), 0.0)
+
+    @property
+    def calibrated(self) -> bool:
+        return self.drop_lean > 0 or self.drop_spread > 0
+
+    def predict(self, m) -> np.ndarray:
+        """Forecast validation error at training size(s) m (calibrated beyond the data).
+
+        With a lean, the forecast keeps only (1 - lean) of the curve's further
+        drop: a blend of the curve and its value at the largest measured size,
+        so it never rises with m.
+        """
+        raw = self.raw_predict(m)
+        if self.drop_lean <= 0:
+            return raw
+        return raw + self.drop_lean * self.drop_beyond_data(m)
 
     # -- bands
     def _band_from(self, point: np.ndarray, replicates: np.ndarray, confidence: float):
@@ -446,13 +478,53 @@ class CurveFit:
         above = np.maximum(self.inflation * (q_high - point), 0.0)
         return np.maximum(point - np.hypot(below, unseen), 0.0), point + np.hypot(above, unseen)
 
-    def band(self, m, confidence: float = 0.9) -> tuple[np.ndarray, np.ndarray]:
-        """Two-sided confidence band (low, high) for the error at size(s) m."""
-        x = np.atleast_1d(np.asarray(m, dtype=float)) / self.scale
+    def _edges(self, m: np.ndarray, confidence: float):
+        """(point, low, high) at sizes m, calibrated; the upper edge not yet made monotone.
+
+        Beyond the data each edge's distance from the point grows in quadrature
+        by z x drop_spread x the forecast further drop: the shape error this
+        run's own extrapolations showed.
+        """
+        m = np.asarray(m, dtype=float)
+        x = m / self.scale
         fam = FAMILIES[self.family]
         with np.errstate(all="ignore"):
             replicates = fam.evaluate(x[None, :], self.boot_theta.T[:, :, None])
-        low, high = self._band_from(fam.evaluate(x, self.theta), replicates, confidence)
+        raw = fam.evaluate(x, self.theta)
+        low, high = self._band_from(raw, replicates, confidence)
+        if not self.calibrated:
+            return raw, low, high
+        drop = self.drop_beyond_data(m)
+        z = NormalDist().inv_cdf(0.5 + _check_confidence(confidence) / 2)
+        shape = z * self.drop_spread * drop
+        point = raw + self.drop_lean * drop
+        return (point, np.maximum(point - np.hypot(raw - low, shape), 0.0),
+                point + np.hypot(high - raw, shape))
+
+    def _monotone(self, m, edge: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
+        """`edge` made non-increasing beyond the data: its running minimum from the largest size.
+
+        Errors do not rise with more data, so a forecast (or an upper bound)
+        at m is no higher than it is at any smaller size past the data.
+        """
+        m_in = np.asarray(m, dtype=float)
+        flat = np.atleast_1d(m_in).ravel()
+        start = float(self.sizes[-1])
+        values = edge(flat)
+        beyond = flat > start
+        if beyond.any():
+            grid = np.geomspace(start, float(flat[beyond].max()), MONOTONE_GRID)
+            running = np.minimum.accumulate(edge(grid))
+            at = np.clip(np.searchsorted(grid, flat[beyond], side="right") - 1, 0, None)
+            values[beyond] = np.minimum(values[beyond], running[at])
+        return values.reshape(m_in.shape) if m_in.ndim else values[0]
+
+    def band(self, m, confidence: float = 0.9) -> tuple[np.ndarray, np.ndarray]:
+        """Two-sided confidence band (low, high) for the error at size(s) m."""
+        sizes = np.atleast_1d(np.asarray(m, dtype=float))
+        _, low, high = self._edges(sizes, confidence)
+        if self.calibrated:
+            high = self._monotone(sizes, lambda g: self._edges(g, confidence)[2])
         if np.ndim(m) == 0:
             return low[0], high[0]
         return low, high
@@ -476,8 +548,11 @@ class CurveFit:
             raise GridplanError(f"The target error must be a non-negative number, got {target!r}.")
         _check_confidence(confidence)
         fam = FAMILIES[self.family]
-        point = _point_reach(fam, self.theta, self.scale, target, max_size)
         grid = np.geomspace(1.0, max_size, 721)
+        if self.drop_lean > 0:
+            point = _edge_reach(lambda m: self.predict(m), grid, self.predict(grid), target)
+        else:
+            point = _point_reach(fam, self.theta, self.scale, target, max_size)
         low_edge, high_edge = self.band(grid, confidence)
         low = _edge_reach(lambda m: self.band(m, confidence)[0], grid, low_edge, target)
         high = _edge_reach(lambda m: self.band(m, confidence)[1], grid, high_edge, target)
@@ -869,6 +944,7 @@ class GridCurves(dict):
         self.unfitted: list[dict] = list(unfitted or [])
         self.floor: SharedFloor | None = None
         self.from_cache = False     # read back from the run folder (gridplan.curvestore)
+        self.calibration = None     # gridplan.calibration.Calibration, when calibrated
 
 
 @dataclass(frozen=True)
@@ -944,7 +1020,8 @@ def _fit_settings(settings: list[_SettingData], families: tuple[str, ...], n_boo
 
 
 def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
-             n_boot: int = DEFAULT_BOOT, seed: int = 0, share_floor: bool = True) -> GridCurves:
+             n_boot: int = DEFAULT_BOOT, seed: int = 0, share_floor: bool = True,
+             calibrate: bool = True) -> GridCurves:
     """Fit a learning curve for every (capacity, regularisation) setting of a grid.
 
     Only rows with status "ok" are used; the others are counted per setting.
@@ -953,7 +1030,9 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
     are fitted together (`gridplan.batchfit`). With `share_floor`, the noise
     floor is estimated from the well-determined settings (`shared_floor`) and
     every setting whose asymptote fell below the floor's lower band edge is
-    refitted with its asymptote bounded there.
+    refitted with its asymptote bounded there. With `calibrate`, every
+    forecast beyond the data carries this run's own extrapolation record
+    (`gridplan.calibration`), kept in `GridCurves.calibration`.
     """
     missing = [c for c in CELL_COLUMNS if c not in cells.columns]
     if missing:
@@ -980,6 +1059,9 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
         for data, result in zip(again, _fit_settings(again, families, n_boot, bound)):
             if isinstance(result, CurveFit):
                 grid[(data.info.capacity_index, data.info.regularization_index)] = result
+    if calibrate and grid:
+        from gridplan.calibration import calibrate as calibrate_fits
+        grid.calibration = calibrate_fits(settings, grid, families)
     return grid
 
 

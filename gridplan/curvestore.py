@@ -23,7 +23,7 @@ from gridplan.curves import (DEFAULT_BOOT, DEFAULT_FAMILIES, CurveFit, GridCurve
 
 CURVES_NAME = "curves.json"
 #: Bumped whenever fitting changes what it returns, so older files are ignored.
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 #: States of the cells kept at once (a backtest's subset beside the full run, say).
 KEEP_STATES = 4
 KEY_COLUMNS = ("capacity_index", "regularization_index", "train_size", "repeat", "fold",
@@ -95,7 +95,8 @@ def fit_to_json(fit: CurveFit) -> dict:
     out = {name: np.asarray(getattr(fit, name)).tolist() for name in _ARRAYS}
     out.update(family=fit.family, scale=fit.scale, n_units=fit.n_units, inflation=fit.inflation,
                holdout_errors=fit.holdout_errors, asymptote_min=fit.asymptote_min,
-               n_repeats=fit.n_repeats,
+               n_repeats=fit.n_repeats, drop_lean=fit.drop_lean,
+               drop_spread=fit.drop_spread,
                train_mean=None if fit.train_mean is None else np.asarray(fit.train_mean).tolist(),
                setting=None if fit.setting is None else vars(fit.setting))
     return out
@@ -108,6 +109,7 @@ def fit_from_json(data: dict) -> CurveFit:
         family=data["family"], scale=float(data["scale"]), n_units=int(data["n_units"]),
         inflation=float(data["inflation"]), holdout_errors=dict(data["holdout_errors"]),
         asymptote_min=float(data["asymptote_min"]), n_repeats=int(data["n_repeats"]),
+        drop_lean=float(data["drop_lean"]), drop_spread=float(data["drop_spread"]),
         train_mean=None if data["train_mean"] is None else np.array(data["train_mean"], dtype=float),
         setting=None if data["setting"] is None else SettingInfo(**data["setting"]), **arrays)
 
@@ -115,11 +117,15 @@ def fit_from_json(data: dict) -> CurveFit:
 def grid_to_json(grid: GridCurves) -> dict:
     return {"fits": [[list(key), fit_to_json(fit)] for key, fit in grid.items()],
             "unfitted": grid.unfitted,
-            "floor": None if grid.floor is None else vars(grid.floor)}
+            "floor": None if grid.floor is None else vars(grid.floor),
+            "calibration": None if grid.calibration is None else grid.calibration.as_dict()}
 
 
 def grid_from_json(data: dict) -> GridCurves:
     grid = GridCurves({tuple(key): fit_from_json(fit) for key, fit in data["fits"]},
                       unfitted=data["unfitted"])
     grid.floor = None if data["floor"] is None else SharedFloor(**data["floor"])
+    if data.get("calibration") is not None:
+        from gridplan.calibration import Calibration
+        grid.calibration = Calibration(**data["calibration"])
     return grid

@@ -142,3 +142,21 @@ def test_a_damaged_curves_file_is_ignored_and_rewritten(tmp_path):
     (run_dir / curvestore.CURVES_NAME).write_text("{not json")
     assert not api.fit_curves(run_dir).from_cache
     assert api.fit_curves(run_dir).from_cache
+
+
+def test_a_parameter_at_its_bound_does_not_freeze_the_others():
+    # A flat curve pins pow3's exponent at its bound with a vanishing amplitude, whose
+    # Jacobian column dwarfs the asymptote's; the asymptote must still move to the
+    # weighted mean (reference: scipy.optimize.least_squares from the same start).
+    from scipy.optimize import least_squares
+    fam = FAMILIES["pow3"]
+    sizes = np.array([30, 51, 88, 150, 255, 436, 745, 1273.0])
+    y = np.array([[6.9, 6.5, 8.2, 6.6, 7.1, 9.3, 7.1, 6.3]])
+    w = 1.0 / np.array([[1.0, 0.5, 1.7, 0.9, 0.7, 2.4, 1.1, 0.9]])
+    x = sizes[None, :] / sizes[-1]
+    start = np.array([[6.15, 1e-17, 10.0]])
+    theta, cost = fit_batch(fam.evaluate, fam.jacobian, x, y, w, start, fam.lower, fam.upper)
+    reference = least_squares(lambda t: (fam.evaluate(x[0], t) - y[0]) * w[0], start[0],
+                              bounds=(fam.lower, fam.upper), method="trf", x_scale="jac")
+    assert cost[0] <= reference.cost * (1 + 1e-6)
+    assert theta[0, 0] == pytest.approx(np.sum(w ** 2 * y) / np.sum(w ** 2), rel=0.02)

@@ -1,0 +1,167 @@
+"""How wrong this run's own extrapolations have been, and the band and lean that follow.
+
+The bootstrap behind each band sees only sampling noise; past the data the
+larger error is usually the curve's shape. Each setting with enough sizes is
+refitted (the same family choice and fit) on its smaller sizes only and its
+forecasts compared with the sizes it did not see. A forecast beyond the data
+is the fitted value at the last fitted size minus a further drop D; pooled
+over settings, the residuals (measured - forecast) are modelled as
+
+    residual ~ Normal(lean * D, sd_boot^2 + sd_meas^2 + (spread * D)^2)
+
+with sd_boot the forecast's own bootstrap spread and sd_meas the measured
+mean's standard error. `lean` is the share of the forecast drop that did not
+happen (> 0: this run's curves have been optimistic), `spread` the relative
+error of the drop itself. Both are fitted by maximum likelihood and shrunk
+toward a prior worth PRIOR_SETTINGS settings (the spread measured on the
+project's corpus, benchmarks/corpus.py; no lean). A lean in (0, 1] takes that
+share of every forecast's further drop back (a negative one, pessimistic
+curves, is reported but not credited); the spread widens every band beyond
+the data. Both scale with D, so a curve forecast to stay flat stays narrow.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass
+from statistics import NormalDist
+
+import numpy as np
+
+from gridplan.errors import GridplanError
+
+#: Prior relative error of a forecast's further drop, and its weight in
+#: settings. Measured on the corpus (benchmarks/corpus.py).
+PRIOR_SPREAD = 0.3
+PRIOR_SETTINGS = 6.0
+#: Refits use sizes up to the last ORIGINS measured ones, keeping at least
+#: MIN_FIT_SIZES sizes to fit on.
+ORIGINS = 3
+MIN_FIT_SIZES = 4
+#: Bootstrap resamples per refit (only their spread at the held sizes is used).
+CHECK_BOOT = 24
+#: Spreads searched for the maximum-likelihood fit.
+SPREAD_GRID = np.concatenate([[0.0], np.geomspace(1e-3, 10.0, 300)])
+
+
+@dataclass(frozen=True)
+class Calibration:
+    """This run's record of extrapolation error and what is applied because of it."""
+
+    lean_fitted: float | None          # share of forecast drops that did not happen
+    spread_fitted: float | None        # relative error of the forecast drop
+    lean: float                        # applied to forecasts, in [0, 1]
+    spread: float                      # applied to bands
+    checks: int                        # (setting, origin, size) comparisons pooled
+    settings: int                      # settings that could be checked
+    median_abs_rel_error: float | None  # of the uncorrected forecasts in the checks
+    optimistic_share: float | None     # share of checks where the forecast was too low
+
+    def as_dict(self) -> dict:
+        return asdict(self)
+
+    def sentence(self) -> str:
+        """One plain sentence on what this run's past extrapolations showed."""
+        if not self.checks:
+            return (f"too few training sizes to check this run's own extrapolations, so bands "
+                    f"carry the usual shape error ({self.spread:.0%} of each forecast drop)")
+        lean = self.lean_fitted or 0.0
+        direction = ("optimistic" if lean > 0.02 else "pessimistic" if lean < -0.02
+                     else "about right")
+        text = (f"refitted on their smaller sizes, {self.settings} settings forecast their larger "
+                f"ones with a median error of {self.median_abs_rel_error:.1%} "
+                f"({self.optimistic_share:.0%} of {self.checks} forecasts too low): this run's "
+                f"curves have been {direction}")
+        if self.lean > 0:
+            text += (f", so forecasts count on only {1 - self.lean:.0%} of the further drop "
+                     f"their curve promises")
+        return text + f"; bands carry {self.spread:.0%} of each forecast drop as shape error"
+
+
+def prior() -> Calibration:
+    """What is applied when a run has nothing to check its extrapolations on."""
+    return Calibration(None, None, 0.0, PRIOR_SPREAD, 0, 0, None, None)
+
+
+def fit_calibration(drops: np.ndarray, residuals: np.ndarray, variances: np.ndarray,
+                    levels: np.ndarray, settings: int) -> Calibration:
+    """Maximum-likelihood lean and spread from pooled checks, shrunk toward the prior."""
+    arrays = [np.asarray(a, dtype=float) for a in (drops, residuals, variances, levels)]
+    keep = np.all([np.isfinite(a) for a in arrays], axis=0) & (arrays[0] > 0)
+    d, r, v, level = (a[keep] for a in arrays)
+    if d.size == 0 or settings == 0:
+        return prior()
+    v = np.maximum(v, 1e-24)
+    total = v[None, :] + (SPREAD_GRID[:, None] * d[None, :]) ** 2       # (grid, checks)
+    weights = 1.0 / total
+    lean = (weights * r * d).sum(axis=1) / (weights * d * d).sum(axis=1)
+    misfit = r[None, :] - lean[:, None] * d[None, :]
+    loglik = -0.5 * (misfit ** 2 / total + np.log(total)).sum(axis=1)
+    best = int(np.argmax(loglik))
+    spread_hat, lean_hat = float(SPREAD_GRID[best]), float(lean[best])
+    share = settings / (settings + PRIOR_SETTINGS)
+    spread = math.sqrt(share * spread_hat ** 2 + (1 - share) * PRIOR_SPREAD ** 2)
+    applied = min(1.0, max(0.0, share * lean_hat))
+    return Calibration(lean_hat, spread_hat, applied, spread, int(d.size), int(settings),
+                       float(np.median(np.abs(r) / level)), float(np.mean(r > 0)))
+
+
+def self_checks(settings_data: list, fits: dict, families: tuple[str, ...]):
+    """Refit each fitted setting on its smaller sizes.
+
+    Returns (forecast drops, residuals, their noise variances, measured levels,
+    settings checked), one entry per held size of each refit.
+    """
+    from gridplan.curves import _fit_problems, _level_and_spread, _problem
+
+    problems, held = [], []
+    for data in settings_data:
+        key = (data.info.capacity_index, data.info.regularization_index)
+        fit = fits.get(key)
+        if fit is None:
+            continue
+        usable = np.any(np.isfinite(data.validation), axis=1)
+        sizes, validation = data.sizes[usable], data.validation[usable]
+        training = data.training[usable]
+        level, spread = _level_and_spread(validation)
+        for back in range(1, ORIGINS + 1):
+            cut = len(sizes) - back
+            if cut < MIN_FIT_SIZES:
+                break
+            try:
+                problems.append(_problem(sizes[:cut], validation[:cut], training[:cut], data.info,
+                                         data.n_repeats, data.seed, fit.asymptote_min))
+            except GridplanError:   # a truncated curve that cannot be fitted is not a check
+                continue
+            held.append((key, sizes[cut:], level[cut:], spread[cut:]))
+    if not problems:
+        return np.array([]), np.array([]), np.array([]), np.array([]), 0
+    z = NormalDist().inv_cdf(0.95)
+    drops, residuals, variances, levels, checked = [], [], [], [], set()
+    for refit, (key, sizes, level, spread) in zip(_fit_problems(problems, families, CHECK_BOOT),
+                                                  held):
+        if isinstance(refit, str):
+            continue
+        forecast = refit.raw_predict(sizes)
+        low, high = refit.band(sizes, 0.9)
+        ok = np.isfinite(level) & np.isfinite(forecast)
+        if not ok.any():
+            continue
+        checked.add(key)
+        drops.append(refit.drop_beyond_data(sizes)[ok])
+        residuals.append((level - forecast)[ok])
+        variances.append((((high - low) / (2 * z)) ** 2 + spread ** 2)[ok])
+        levels.append(level[ok])
+    if not drops:
+        return np.array([]), np.array([]), np.array([]), np.array([]), 0
+    return (np.concatenate(drops), np.concatenate(residuals), np.concatenate(variances),
+            np.concatenate(levels), len(checked))
+
+
+def calibrate(settings_data: list, fits: dict, families: tuple[str, ...]) -> Calibration:
+    """This run's calibration, applied to every fit in `fits` (in place)."""
+    calibration = fit_calibration(*self_checks(settings_data, fits, families))
+    for fit in fits.values():
+        fit.drop_lean = calibration.lean
+        fit.drop_spread = calibration.spread
+    return calibration
