@@ -218,12 +218,14 @@ def main() -> None:
                           "coverage": float(np.mean([r["inside_band"] for r in rows])),
                           "too_low": float(np.mean(lean)),
                           "lean": calibration.get("lean"), "spread": calibration.get("spread"),
+                          "level_spread": calibration.get("level_spread"),
                           "seconds": time.perf_counter() - started})
             t = table[-1]
             print(f"{t['member']:<16} {t['source']:<28} {t['settings']:>3} settings  "
                   f"median |rel err| {t['median_rel_error']:6.1%}  in 90% band {t['coverage']:5.0%}  "
-                  f"forecast too low {t['too_low']:4.0%}  lean {t['lean']:.2f} spread "
-                  f"{t['spread']:.2f}  ({t['seconds']:.0f} s)", flush=True)
+                  f"too low {t['too_low']:4.0%}  lean {t['lean']:.2f} drop spread "
+                  f"{t['spread']:.2f} level spread {t['level_spread']:.3f}  "
+                  f"({t['seconds']:.0f} s)", flush=True)
     rel = [r["rel_error"] for r in pooled if r["rel_error"] is not None]
     coverage = float(np.mean([r["inside_band"] for r in pooled]))
     worst = min(t["coverage"] for t in table)

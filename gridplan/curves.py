@@ -74,6 +74,9 @@ DEFAULT_MAX_SIZE = 1e12
 #: converged by then keeps its best point so far.
 MAX_EVALUATIONS_PER_PARAM = 40
 
+#: Doublings beyond the data after which the level shape error stops growing:
+#: the corpus measures it two doublings out (x4) and no further.
+LEVEL_DOUBLINGS_CAP = 2.0
 #: Points of the grid on which calibrated forecasts are made monotone beyond the data.
 MONOTONE_GRID = 256
 
@@ -410,6 +413,10 @@ class CurveFit:
     #: standard deviation, added to the band.
     drop_lean: float = 0.0
     drop_spread: float = 0.0
+    #: ... and `level_spread` x the forecast x doublings beyond the data (at most
+    #: LEVEL_DOUBLINGS_CAP) is a second shape error, which stays when a curve is
+    #: forecast flat but keeps falling.
+    level_spread: float = 0.0
 
     @property
     def unseen_se(self) -> float:
@@ -449,7 +456,12 @@ class CurveFit:
 
     @property
     def calibrated(self) -> bool:
-        return self.drop_lean > 0 or self.drop_spread > 0
+        return self.drop_lean > 0 or self.drop_spread > 0 or self.level_spread > 0
+
+    def doublings_beyond_data(self, m) -> np.ndarray:
+        """log2(m / largest measured size), 0 inside the data, at most LEVEL_DOUBLINGS_CAP."""
+        ratio = np.maximum(np.asarray(m, dtype=float) / float(self.sizes[-1]), 1.0)
+        return np.minimum(np.log2(ratio), LEVEL_DOUBLINGS_CAP)
 
     def predict(self, m) -> np.ndarray:
         """Forecast validation error at training size(s) m (calibrated beyond the data).
@@ -496,8 +508,9 @@ class CurveFit:
             return raw, low, high
         drop = self.drop_beyond_data(m)
         z = NormalDist().inv_cdf(0.5 + _check_confidence(confidence) / 2)
-        shape = z * self.drop_spread * drop
         point = raw + self.drop_lean * drop
+        shape = z * np.hypot(self.drop_spread * drop,
+                             self.level_spread * point * self.doublings_beyond_data(m))
         return (point, np.maximum(point - np.hypot(raw - low, shape), 0.0),
                 point + np.hypot(high - raw, shape))
 
@@ -513,10 +526,10 @@ class CurveFit:
         values = edge(flat)
         beyond = flat > start
         if beyond.any():
-            grid = np.geomspace(start, float(flat[beyond].max()), MONOTONE_GRID)
+            grid = np.union1d(np.geomspace(start, float(flat[beyond].max()), MONOTONE_GRID),
+                              flat[beyond])
             running = np.minimum.accumulate(edge(grid))
-            at = np.clip(np.searchsorted(grid, flat[beyond], side="right") - 1, 0, None)
-            values[beyond] = np.minimum(values[beyond], running[at])
+            values[beyond] = running[np.searchsorted(grid, flat[beyond])]
         return values.reshape(m_in.shape) if m_in.ndim else values[0]
 
     def band(self, m, confidence: float = 0.9) -> tuple[np.ndarray, np.ndarray]:

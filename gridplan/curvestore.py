@@ -23,7 +23,7 @@ from gridplan.curves import (DEFAULT_BOOT, DEFAULT_FAMILIES, CurveFit, GridCurve
 
 CURVES_NAME = "curves.json"
 #: Bumped whenever fitting changes what it returns, so older files are ignored.
-FORMAT_VERSION = 2
+FORMAT_VERSION = 3
 #: States of the cells kept at once (a backtest's subset beside the full run, say).
 KEEP_STATES = 4
 KEY_COLUMNS = ("capacity_index", "regularization_index", "train_size", "repeat", "fold",
@@ -96,7 +96,7 @@ def fit_to_json(fit: CurveFit) -> dict:
     out.update(family=fit.family, scale=fit.scale, n_units=fit.n_units, inflation=fit.inflation,
                holdout_errors=fit.holdout_errors, asymptote_min=fit.asymptote_min,
                n_repeats=fit.n_repeats, drop_lean=fit.drop_lean,
-               drop_spread=fit.drop_spread,
+               drop_spread=fit.drop_spread, level_spread=fit.level_spread,
                train_mean=None if fit.train_mean is None else np.asarray(fit.train_mean).tolist(),
                setting=None if fit.setting is None else vars(fit.setting))
     return out
@@ -110,6 +110,7 @@ def fit_from_json(data: dict) -> CurveFit:
         inflation=float(data["inflation"]), holdout_errors=dict(data["holdout_errors"]),
         asymptote_min=float(data["asymptote_min"]), n_repeats=int(data["n_repeats"]),
         drop_lean=float(data["drop_lean"]), drop_spread=float(data["drop_spread"]),
+        level_spread=float(data["level_spread"]),
         train_mean=None if data["train_mean"] is None else np.array(data["train_mean"], dtype=float),
         setting=None if data["setting"] is None else SettingInfo(**data["setting"]), **arrays)
 
