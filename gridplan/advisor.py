@@ -337,6 +337,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         "noise_floor_band": [floor.low, floor.high] if floor else None,
         "noise_floor_setting": labels(floor.capacity_index, floor.regularization_index) if floor else None,
         "noise_floor_at_capacity_edge": floor_at_edge,
+        "calibration": curves.calibration.as_dict() if curves.calibration is not None else None,
         "reachable": reachable, "binding_limit": limit, "binding_detail": limit_detail,
         "plan_cost": found[0] if found else None, "plan": plan, "actions": actions,
         "costs": {"per_sample": costs.per_sample, "capacity_step": costs.capacity_step,
@@ -422,6 +423,9 @@ def render_advice(advice: dict) -> str:
                      f"{_interval(d['setting_asymptote_band'])}")
     lines.append(f"  noise floor estimate {_g(advice['noise_floor'])} {_interval(advice['noise_floor_band'])}"
                  f" (from setting {advice['noise_floor_setting']})")
+    if advice.get("calibration"):
+        from gridplan.calibration import Calibration
+        lines.append(f"  forecasts: {Calibration(**advice['calibration']).sentence()}")
     if advice["noise_floor_at_capacity_edge"]:
         lines.append("  (found at the grid's largest capacity and still falling with capacity: it may "
                      "include bias, so no noise-floor verdict is given)")

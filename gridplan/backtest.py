@@ -100,6 +100,10 @@ def render_backtest(result: dict) -> str:
         lines.append(f"{r['capacity']:>10} {r['regularization']:>14} {r['family']:>6} "
                      f"{r['predicted']:>10.4g} {band:>21} {r['measured']:>10.4g} {rel:>8}  "
                      f"{'yes' if r['inside_band'] else 'no'}")
+    if result.get("calibration"):
+        from gridplan.calibration import Calibration
+        lines.append(f"calibration from the fitted sizes: "
+                     f"{Calibration(**result['calibration']).sentence()}")
     median = result["median_abs_rel_error"]
     lines.append(f"median |relative error| {'-' if median is None else f'{median:.1%}'}; "
                  f"measured value inside the {result['confidence']:.0%} band for "

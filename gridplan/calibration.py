@@ -42,6 +42,9 @@ from gridplan.errors import GridplanError
 PRIOR_SPREAD = 0.3
 PRIOR_LEVEL_SPREAD = 0.1
 PRIOR_SETTINGS = 6.0
+#: A lean counts (is said and applied) when more than this share of the
+#: forecast drops failed to happen (or, negative, was exceeded).
+CLEAR_LEAN = 0.05
 #: Refits use sizes up to the last ORIGINS measured ones, keeping at least
 #: MIN_FIT_SIZES sizes to fit on.
 ORIGINS = 3
@@ -78,7 +81,7 @@ class Calibration:
                     f"carry the usual shape error ({self.spread:.0%} of each forecast drop and "
                     f"{self.level_spread:.1%} of the forecast per doubling beyond the data)")
         lean = self.lean_fitted or 0.0
-        direction = ("optimistic" if lean > 0.05 else "pessimistic" if lean < -0.05
+        direction = ("optimistic" if lean > CLEAR_LEAN else "pessimistic" if lean < -CLEAR_LEAN
                      else "about right")
         text = (f"refitted on their smaller sizes, {self.settings} settings forecast their larger "
                 f"ones with a median error of {self.median_abs_rel_error:.1%} "
@@ -126,7 +129,7 @@ def fit_calibration(drops: np.ndarray, residuals: np.ndarray, variances: np.ndar
     def shrunk(fitted: float, prior_value: float) -> float:
         return math.sqrt(share * fitted ** 2 + (1 - share) * prior_value ** 2)
 
-    applied = min(1.0, max(0.0, share * lean_hat))
+    applied = min(1.0, share * lean_hat) if lean_hat > CLEAR_LEAN else 0.0
     return Calibration(lean_hat, spread_hat, level_hat, applied, shrunk(spread_hat, PRIOR_SPREAD),
                        shrunk(level_hat, PRIOR_LEVEL_SPREAD), int(d.size), int(settings),
                        float(np.median(np.abs(r) / level)), float(np.mean(r > 0)))

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import functools
 import sys
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Callable, Optional
 
@@ -42,6 +43,17 @@ def friendly(command: Callable) -> Callable:
             _fail("interrupted; every finished cell is saved. Run the same command again "
                   "to resume.", code=130)
     return wrapper
+
+
+@contextmanager
+def _busy(message: str):
+    """A spinner with the elapsed time on stderr while a deciding command works (terminals only)."""
+    if not sys.stderr.isatty():
+        yield
+        return
+    from rich.console import Console
+    with Console(stderr=True).status(f"{message} ...", spinner="line"):
+        yield
 
 
 def _describe(spec, run_dir: Path) -> str:
@@ -223,9 +235,9 @@ def demo(out: Path = typer.Option(Path("outputs/demo"), "--out", help="Folder fo
     cells = api.open_run(out / "run").cells()
     typer.echo(_demo_summary(cells, NOISE_FLOOR_MSE))
     from gridplan.report import REPORT_NAME, gather_inputs, write_inputs
-    typer.echo("fitting learning curves and writing the report ...", err=True)
-    inputs = gather_inputs(out / "run")
-    path = write_inputs(inputs, out / "run" / REPORT_NAME)
+    with _busy("fitting learning curves and writing the report"):
+        inputs = gather_inputs(out / "run")
+        path = write_inputs(inputs, out / "run" / REPORT_NAME)
     if inputs.advice is not None:
         typer.echo(_advice_summary(inputs.advice))
     typer.echo(f"report: {path}")
@@ -264,7 +276,8 @@ def curves(run_dir: Path = typer.Argument(..., help="Run folder."),
     import json
     from gridplan import api
     from gridplan.curves import render_summary
-    summary = api.curves_report(run_dir, target=target, confidence=confidence, n_boot=boot)
+    with _busy("fitting learning curves"):
+        summary = api.curves_report(run_dir, target=target, confidence=confidence, n_boot=boot)
     if as_json:
         typer.echo(json.dumps(summary, indent=2))
     else:
@@ -301,7 +314,8 @@ def heatmap(run_dir: Path = typer.Argument(..., help="Run folder."),
     advice = None
     if with_plan:
         from gridplan.advisor import advise as make_advice
-        advice = make_advice(run_dir, target=target)
+        with _busy("fitting learning curves and planning"):
+            advice = make_advice(run_dir, target=target)
     figure = views.heatmap_figure(run, show=show, axis=axis, capacity=capacity, advice=advice,
                                   target=target)
     path = views.save_figure(figure, output or Path(run_dir) / f"heatmap-{axis}-{show}.png")
@@ -324,10 +338,11 @@ def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
     """Diagnose bias and variance and plan the cheapest way to the target error."""
     import json
     from gridplan.advisor import advise as make_advice, render_advice
-    advice = make_advice(run_dir, target=target, at=at, confidence=confidence,
-                         per_sample=per_sample, capacity_step=capacity_step,
-                         regularization_step=regularization_step, max_samples=max_samples,
-                         n_boot=boot)
+    with _busy("fitting learning curves and planning"):
+        advice = make_advice(run_dir, target=target, at=at, confidence=confidence,
+                             per_sample=per_sample, capacity_step=capacity_step,
+                             regularization_step=regularization_step, max_samples=max_samples,
+                             n_boot=boot)
     typer.echo(json.dumps(advice, indent=2) if as_json else render_advice(advice))
 
 
@@ -341,8 +356,9 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder."),
            boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve.")):
     """Write one self-contained HTML report: grid, curves, diagnosis, plan and cautions."""
     from gridplan.report import write_report
-    typer.echo("writing the report (fitting learning curves) ...", err=True)
-    path = write_report(run_dir, output, target=target, confidence=confidence, at=at, n_boot=boot)
+    with _busy("writing the report"):
+        path = write_report(run_dir, output, target=target, confidence=confidence, at=at,
+                            n_boot=boot)
     typer.echo(f"report written to {path}")
 
 

@@ -1123,9 +1123,11 @@ def curves_summary(fits: Mapping[tuple[int, int], CurveFit], *, target: float | 
     _check_confidence(confidence)
     settings = [_setting_summary(fits[key], target, confidence, current_size, max_size)
                 for key in sorted(fits)]
+    calibration = getattr(fits, "calibration", None)
     return _plain({"target": target, "confidence": confidence,
                    "wide_band_ratio": WIDE_BAND_RATIO, "settings": settings,
-                   "unfitted": list(getattr(fits, "unfitted", []))})
+                   "unfitted": list(getattr(fits, "unfitted", [])),
+                   "calibration": calibration.as_dict() if calibration is not None else None})
 
 
 def _number(value, digits: int = 4) -> str:
@@ -1176,6 +1178,9 @@ def render_summary(summary: dict) -> str:
     out += ["  ".join(str(c).ljust(w) for c, w in zip(row, widths)).rstrip() for row in lines]
     for u in summary.get("unfitted", []):
         out.append(f"{u['capacity']}  {u['regularization']}  not fitted: {u['reason']}")
+    if summary.get("calibration"):
+        from gridplan.calibration import Calibration
+        out.append(f"Forecasts beyond the data: {Calibration(**summary['calibration']).sentence()}.")
     return "\n".join(out)
 
 
