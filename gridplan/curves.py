@@ -77,8 +77,8 @@ MAX_EVALUATIONS_PER_PARAM = 40
 #: Doublings beyond the data after which the level shape error stops growing:
 #: the corpus measures it two doublings out (x4) and no further.
 LEVEL_DOUBLINGS_CAP = 2.0
-#: Points of the grid on which calibrated forecasts are made monotone beyond the data.
-MONOTONE_GRID = 256
+#: Points of the log grid on which the upper band edge is made monotone beyond the data.
+MONOTONE_GRID = 1024
 
 _TINY = 1e-12
 
@@ -417,6 +417,7 @@ class CurveFit:
     #: LEVEL_DOUBLINGS_CAP) is a second shape error, which stays when a curve is
     #: forecast flat but keeps falling.
     level_spread: float = 0.0
+    _tables: dict = field(default_factory=dict, repr=False, compare=False)
 
     @property
     def unseen_se(self) -> float:
@@ -514,30 +515,39 @@ class CurveFit:
         return (point, np.maximum(point - np.hypot(raw - low, shape), 0.0),
                 point + np.hypot(high - raw, shape))
 
-    def _monotone(self, m, edge: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
-        """`edge` made non-increasing beyond the data: its running minimum from the largest size.
+    def _upper_table(self, confidence: float) -> tuple[np.ndarray, np.ndarray]:
+        """log sizes from the largest measured one to DEFAULT_MAX_SIZE and the running minimum
+        of the upper edge there (computed once per confidence)."""
+        key = float(confidence)
+        if key not in self._tables:
+            grid = np.geomspace(float(self.sizes[-1]), max(DEFAULT_MAX_SIZE, 2.0 * self.sizes[-1]),
+                                MONOTONE_GRID)
+            self._tables[key] = (np.log(grid),
+                                 np.minimum.accumulate(self._edges(grid, confidence)[2]))
+        return self._tables[key]
 
-        Errors do not rise with more data, so a forecast (or an upper bound)
-        at m is no higher than it is at any smaller size past the data.
+    def _monotone_upper(self, sizes: np.ndarray, high: np.ndarray, confidence: float) -> np.ndarray:
+        """The upper edge made non-increasing beyond the data.
+
+        Errors do not rise with more data, so an upper bound at m also holds
+        at every larger size: past the largest measured size the edge is its
+        running minimum, read off a fine log grid by linear interpolation
+        (non-increasing, and never below the running minimum).
         """
-        m_in = np.asarray(m, dtype=float)
-        flat = np.atleast_1d(m_in).ravel()
-        start = float(self.sizes[-1])
-        values = edge(flat)
-        beyond = flat > start
-        if beyond.any():
-            grid = np.union1d(np.geomspace(start, float(flat[beyond].max()), MONOTONE_GRID),
-                              flat[beyond])
-            running = np.minimum.accumulate(edge(grid))
-            values[beyond] = running[np.searchsorted(grid, flat[beyond])]
-        return values.reshape(m_in.shape) if m_in.ndim else values[0]
+        beyond = sizes > self.sizes[-1]
+        if not beyond.any():
+            return high
+        log_grid, running = self._upper_table(confidence)
+        out = high.copy()
+        out[beyond] = np.interp(np.log(sizes[beyond]), log_grid, running)
+        return out
 
     def band(self, m, confidence: float = 0.9) -> tuple[np.ndarray, np.ndarray]:
         """Two-sided confidence band (low, high) for the error at size(s) m."""
         sizes = np.atleast_1d(np.asarray(m, dtype=float))
         _, low, high = self._edges(sizes, confidence)
         if self.calibrated:
-            high = self._monotone(sizes, lambda g: self._edges(g, confidence)[2])
+            high = self._monotone_upper(sizes, high, confidence)
         if np.ndim(m) == 0:
             return low[0], high[0]
         return low, high

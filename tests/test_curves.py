@@ -329,7 +329,8 @@ def test_fit_grid_summary_and_table():
         assert s["predicted_4x"] <= s["predicted_2x"]
         assert s["largest_size"] == 1600
     table = render_summary(summary)
-    assert len(table.splitlines()) == 3 + 4 + 1
+    assert len(table.splitlines()) == 3 + 4 + 1 + 1        # title, header, rule, rows, unfitted, calibration
+    assert table.splitlines()[-1].startswith("Forecasts beyond the data: refitted on their smaller sizes")
     assert "not reachable" in table and "degree 3" in table
 
     # Each setting's bootstrap is seeded by its own indices: row order does not matter.
