@@ -25,6 +25,8 @@ from gridplan.diagnosis import (
     corrected_t_test,
     diagnose_grid,
     diagnose_setting,
+    Plateau,
+    best_plateau,
     estimate_noise_floor,
 )
 from gridplan.errors import GridplanError
@@ -147,15 +149,18 @@ def _floor_at_capacity_edge(curves: dict, floor: NoiseFloor, n_capacity: int,
     return all(f.asymptote_band(confidence)[0] > floor.high for f in lower)
 
 
-def binding_limit(curves: dict, floor: NoiseFloor | None, target: float, confidence: float,
-                  top_size: int, capped_by_user: bool, bottoms: dict, labels,
-                  n_capacity: int) -> tuple[str, str]:
+def binding_limit(curves: dict, floor: NoiseFloor | None, plateau: Plateau | None,
+                  target: float, confidence: float, top_size: int, capped_by_user: bool,
+                  bottoms: dict, labels, n_capacity: int, size: int) -> tuple[str, str]:
     """(short limit name, sentence) for a target no plan reaches.
 
     Checked in order: the floor sits at the grid's capacity edge (capacity
-    range); the target is below or inside the noise-floor band (noise floor);
-    some setting's curve reaches it beyond the ladder's top size
-    (max_samples); otherwise no setting reaches it at all (capacity range).
+    range); the data's noise floor is known and its band lies above the target
+    (noise floor: only new information helps) or holds it; some setting's
+    band reaches the target beyond the ladder's top size (max_samples); some
+    setting's central forecast reaches it but its band does not (forecast too
+    uncertain: measure more); every setting levels off above the target while
+    the data's floor is unknown (model plateau); otherwise the capacity range.
     """
     if floor is not None and target <= floor.high and _floor_at_capacity_edge(curves, floor, n_capacity,
                                                                           confidence):
@@ -165,9 +170,10 @@ def binding_limit(curves: dict, floor: NoiseFloor | None, target: float, confide
                 f"capacity, so it may be bias rather than noise: extend the grid (more capacity).")
     if floor is not None and target < floor.low:
         return ("noise floor",
-                f"the target {target:.4g} is below the noise-floor estimate {floor.value:.4g} "
-                f"[{floor.low:.4g}, {floor.high:.4g}]: more data or more capacity will not help; "
-                f"only new information (better features or cleaner labels) can.")
+                f"the target {target:.4g} is below the data's noise floor {floor.value:.4g} "
+                f"[{floor.low:.4g}, {floor.high:.4g}] ({floor.evidence}): more data or more "
+                f"capacity will not help; only new information (better features or cleaner "
+                f"labels) can.")
     if floor is not None and target <= floor.high:
         return ("noise floor",
                 f"the target {target:.4g} is inside the noise-floor band {floor.value:.4g} "
@@ -175,23 +181,39 @@ def binding_limit(curves: dict, floor: NoiseFloor | None, target: float, confide
                 f"{confidence:.0%} confidence. More rows narrow that band (the best forecasts near "
                 f"{floor.value:.4g} may then qualify); only new information (better features or "
                 f"cleaner labels) lowers the floor itself.")
-    best = None
+    best, central = None, None
     for key, fit in curves.items():
         if bottoms.get(key, 0.0) > target:
             continue
         need = fit.samples_needed(target, confidence, DEFAULT_MAX_SIZE)
         if need.reachable and (best is None or need.needed < best[1]):
             best = (key, need.needed)
+        if need.point is not None and (central is None or need.point < central[1]):
+            central = (key, need.point)
     if best is not None and best[1] > top_size:
         (ci, ri), needed = best
         cap = "max_samples" if capped_by_user else "the planning reach (no max_samples set)"
         return ("max_samples",
                 f"the target needs about {needed:,} training rows (setting {labels(ci, ri)}), "
                 f"beyond {cap} of {top_size:,}.")
+    if central is not None:
+        (ci, ri), rows = central
+        more = max(size, min(rows, 4 * size) - size)
+        return ("forecast too uncertain",
+                f"setting {labels(ci, ri)} is forecast to reach the target near {rows:,} training "
+                f"rows, but its {confidence:.0%} band does not get there; the forecast is too "
+                f"uncertain to plan on. Label about {more:,} more rows and run again: measured "
+                f"sizes narrow the band.")
+    if plateau is not None and target < plateau.low:
+        where = labels(plateau.capacity_index, plateau.regularization_index)
+        return ("model plateau",
+                f"every setting of this model levels off above the target: the lowest plateau is "
+                f"{plateau.value:.4g} [{plateau.low:.4g}, {plateau.high:.4g}] (setting {where}). "
+                f"That is this model's limit, not necessarily the data's: the noise floor is "
+                f"unknown, so a more flexible model or more capacity may still reach the target.")
     return ("capacity range",
-            "no setting of the grid reaches the target even with unlimited data, yet the "
-            "noise-floor estimate lies below it: extend the grid (more capacity, other "
-            "regularisation).")
+            "no setting of the grid reaches the target even with unlimited data: extend the grid "
+            "(more capacity, other regularisation) or try another model.")
 
 
 # --- the entry point ----------------------------------------------------------------------------
@@ -237,6 +259,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     n_test = float(np.mean(test_sizes)) if test_sizes else float(
         run.meta.get("n_rows", 0)) / max(int(run.meta.get("folds", 5)), 1)
     floor = estimate_noise_floor(curves, confidence)
+    plateau = best_plateau(curves, confidence)
     size = int(ok["train_size"].max())
 
     at_size = ok[ok["train_size"] == size]
@@ -280,9 +303,9 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     limit = None
     limit_detail = None
     if not reachable:
-        limit, limit_detail = binding_limit(curves, floor, target, confidence, ladder[-1],
-                                            costs.max_samples is not None, bottoms, labels,
-                                            len(capacity_labels))
+        limit, limit_detail = binding_limit(curves, floor, plateau, target, confidence,
+                                            ladder[-1], costs.max_samples is not None, bottoms,
+                                            labels, len(capacity_labels), size)
 
     def describe(state: State) -> dict:
         f = states.forecasts[state]
@@ -315,8 +338,8 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
                 rest = cheapest_plan(states.graph, entry.edge.target, states.is_goal)
                 item["then"] = [_step_words(e, capacity_labels, regularization_labels, run.meta)
                                 for e in rest[1]]
-            elif limit_detail is not None:
-                item["reason"] = f"{entry.reason}; {limit}: {limit_detail}"
+            elif limit is not None:
+                item["reason"] = f"{entry.reason} (binding limit: {limit}, above)"
         actions.append(item)
 
     failed = cells[cells["status"] != "ok"]
@@ -337,6 +360,11 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         "noise_floor_band": [floor.low, floor.high] if floor else None,
         "noise_floor_setting": labels(floor.capacity_index, floor.regularization_index) if floor else None,
         "noise_floor_at_capacity_edge": floor_at_edge,
+        "noise_floor_evidence": floor.evidence if floor else None,
+        "plateau": plateau.value if plateau else None,
+        "plateau_band": [plateau.low, plateau.high] if plateau else None,
+        "plateau_setting": (labels(plateau.capacity_index, plateau.regularization_index)
+                            if plateau else None),
         "calibration": curves.calibration.as_dict() if curves.calibration is not None else None,
         "reachable": reachable, "binding_limit": limit, "binding_detail": limit_detail,
         "plan_cost": found[0] if found else None, "plan": plan, "actions": actions,
@@ -421,8 +449,15 @@ def render_advice(advice: dict) -> str:
         lines.append(f"  fitted curve: drop over the next doubling {_g(d['curve_drop_next_doubling'])}, "
                      f"this setting's asymptote {_g(d['setting_asymptote'])} "
                      f"{_interval(d['setting_asymptote_band'])}")
-    lines.append(f"  noise floor estimate {_g(advice['noise_floor'])} {_interval(advice['noise_floor_band'])}"
-                 f" (from setting {advice['noise_floor_setting']})")
+    if advice["noise_floor"] is not None:
+        lines.append(f"  noise floor {_g(advice['noise_floor'])} {_interval(advice['noise_floor_band'])}"
+                     f" (from setting {advice['noise_floor_setting']}: "
+                     f"{advice['noise_floor_evidence']})")
+    else:
+        lines.append(f"  noise floor unknown (no converged settings of different capacity agree, "
+                     f"and none has its training error below its plateau); this model's "
+                     f"lowest plateau {_g(advice['plateau'])} {_interval(advice['plateau_band'])}"
+                     f" (setting {advice['plateau_setting']}) bounds it from above")
     if advice.get("calibration"):
         from gridplan.calibration import Calibration
         lines.append(f"  forecasts: {Calibration(**advice['calibration']).sentence()}")

@@ -894,8 +894,9 @@ CELL_COLUMNS = ("capacity_index", "regularization_index", "capacity", "regulariz
 #: A setting's asymptote informs the shared noise floor when its band (at
 #: FLOOR_CONFIDENCE) is no wider than INFORMATIVE_FLOOR_RATIO x the asymptote,
 #: its curve has nearly converged (the measured error at the largest size is
-#: within CONVERGED_FRACTION x the asymptote of it) and it is consistent with
-#: the setting's own training/validation bracket.
+#: within CONVERGED_FRACTION x the asymptote of it, and the curve falls by
+#: less than that error's standard error over the next doubling) and it is
+#: consistent with the setting's own training/validation bracket.
 INFORMATIVE_FLOOR_RATIO = 1.0
 CONVERGED_FRACTION = 0.1
 FLOOR_CONFIDENCE = 0.9
@@ -911,6 +912,7 @@ class SharedFloor:
     capacity_index: int
     regularization_index: int
     informative: int          # how many settings had a well-determined asymptote
+    evidence: str = ""        # why it counts as the data's floor, in words
 
 
 def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
@@ -921,7 +923,9 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
     floor lies below all of them. Among informative settings (narrow
     asymptote band, nearly converged, consistent with their
     training/validation bracket) the one with the lowest upper band edge
-    gives the estimate and its band. None when no setting qualifies, or when
+    gives the estimate and its band. None when no setting qualifies, when no
+    informative setting of another capacity agrees with it (one model level
+    cannot tell noise from bias), or when
     that estimate lies above another setting's measured error (the converged
     settings are biased, so the data bound the floor only from above).
     Curves still falling steeply are left out: their asymptote is an
@@ -936,6 +940,9 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
             continue
         if fit.validation_mean[-1] - fit.asymptote > CONVERGED_FRACTION * max(fit.asymptote, _TINY):
             continue
+        largest = float(fit.sizes[-1])
+        if float(fit.raw_predict(largest) - fit.raw_predict(2 * largest)) > fit.validation_se[-1]:
+            continue          # still falling by more than its own noise per doubling
         if fit.midpoint_check(confidence).get("disagree"):
             continue
         informative[key] = (fit.asymptote, low, high)
@@ -943,6 +950,27 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
         return None
     key = min(informative, key=lambda k: (informative[k][2], informative[k][0], k))
     value, low, high = informative[key]
+    # One converged curve cannot tell noise from its own bias: a model too
+    # simple for the data levels off above the floor with training and
+    # validation error together. The floor counts as known when a converged
+    # setting of another capacity levels off at the same height (each
+    # plateau inside the other's band), or when this
+    # setting's training error lies clearly below its plateau (the two errors
+    # bracket it, so the model is not held up there by its own bias).
+    agreeing = [k for k, (other, other_low, other_high) in informative.items()
+                if k[0] != key[0] and low <= other <= high and other_low <= value <= other_high]
+    train = fits[key].train_mean
+    bracketed = train is not None and np.isfinite(train[-1]) and float(train[-1]) < low
+    if not agreeing and not bracketed:
+        return None
+    if agreeing:
+        other = fits[agreeing[0]].setting
+        evidence = (f"converged settings of different capacity level off at the same error "
+                    f"(e.g. capacity {fits[key].setting.capacity if fits[key].setting else key[0]} "
+                    f"and {other.capacity if other else agreeing[0][0]})")
+    else:
+        evidence = (f"a converged setting's training error ({float(train[-1]):.4g}) lies below "
+                    f"its plateau and its validation error above it")
     # The floor lies below every measured validation error (up to its noise).
     # When the converged settings' floor sits above another setting's
     # measurement they are biased, and the data do not pin the floor down.
@@ -952,7 +980,7 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
         return None
     high = min(high, ceiling)
     return SharedFloor(float(value), float(max(low, 0.0)), float(high), int(key[0]),
-                       int(key[1]), len(informative))
+                       int(key[1]), len(informative), evidence)
 
 
 class GridCurves(dict):

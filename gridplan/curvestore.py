@@ -2,7 +2,7 @@
 
 `curves.json` holds the curves of the latest states of a run's cells, each
 under a key that hashes the cells themselves (indices, sizes, errors and
-status of every fit) and the fitting options. A run that adds or changes a
+status of every fit), the fitting options and the fitting code. A run that adds or changes a
 cell changes the key, so stale curves are never read; they simply age out.
 Plain JSON (floats written exactly, NaN as NaN), never pickles.
 """
@@ -30,11 +30,21 @@ KEY_COLUMNS = ("capacity_index", "regularization_index", "train_size", "repeat",
                "train_error", "validation_error", "status")
 
 
+def _fitting_code() -> str:
+    """A hash of the modules that compute the curves: new code never reads old curves."""
+    from gridplan import batchfit, calibration, curves
+    digest = hashlib.sha256()
+    for module in (batchfit, calibration, curves):
+        digest.update(Path(module.__file__).read_bytes())
+    return digest.hexdigest()
+
+
 def cells_key(cells: pd.DataFrame, **options) -> str:
-    """A hash of the cells a fit depends on and of the fitting options."""
+    """A hash of the cells a fit depends on, the fitting options and the fitting code."""
     frame = cells.loc[:, list(KEY_COLUMNS)].sort_values(list(KEY_COLUMNS[:5]), kind="stable")
     digest = hashlib.sha256()
-    digest.update(json.dumps({"version": FORMAT_VERSION, **options}, sort_keys=True).encode())
+    digest.update(json.dumps({"version": FORMAT_VERSION, "code": _fitting_code(), **options},
+                             sort_keys=True).encode())
     digest.update(pd.util.hash_pandas_object(frame.reset_index(drop=True), index=False)
                   .to_numpy().tobytes())
     return digest.hexdigest()

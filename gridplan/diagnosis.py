@@ -269,7 +269,7 @@ def diagnose_setting(rows: pd.DataFrame, fit: CurveFit | None, *, target: float,
 
 @dataclass(frozen=True)
 class NoiseFloor:
-    """The grid's noise-floor estimate: one setting's asymptote with its band."""
+    """The data's noise floor (one setting's asymptote with its band), and what it rests on."""
 
     value: float
     low: float
@@ -277,34 +277,56 @@ class NoiseFloor:
     capacity_index: int
     regularization_index: int
     trusted_settings: int
+    evidence: str = ""
+
+    def as_dict(self) -> dict:
+        return _plain(asdict(self))
+
+
+@dataclass(frozen=True)
+class Plateau:
+    """The lowest level this model's curves approach: an upper bound on the data's floor."""
+
+    value: float
+    low: float
+    high: float
+    capacity_index: int
+    regularization_index: int
 
     def as_dict(self) -> dict:
         return _plain(asdict(self))
 
 
 def estimate_noise_floor(curves: dict, confidence: float) -> NoiseFloor | None:
-    """The grid's noise floor: the shared floor of well-determined settings (curves.shared_floor).
+    """The data's noise floor, only where the run gives evidence for it (curves.shared_floor).
 
-    Only settings whose asymptote band is narrow and consistent with their own
-    training/validation bracket count; curves still falling steeply can
-    extrapolate to a floor far below anything measured. When no setting is
-    well determined, the lowest asymptote upper band edge among settings that
-    agree with their bracket (or among all) is used, with its wide band.
+    A single model's lowest asymptote is that model's plateau, which may be
+    its own bias; see `best_plateau`. None when the floor is unknown.
     """
     from gridplan.curves import shared_floor
     if not curves:
         return None
     shared = getattr(curves, "floor", None) or shared_floor(curves, confidence)
-    if shared is not None:
-        return NoiseFloor(shared.value, shared.low, shared.high, shared.capacity_index,
-                          shared.regularization_index, shared.informative)
+    if shared is None:
+        return None
+    return NoiseFloor(shared.value, shared.low, shared.high, shared.capacity_index,
+                      shared.regularization_index, shared.informative, shared.evidence)
+
+
+def best_plateau(curves: dict, confidence: float) -> Plateau | None:
+    """The setting whose asymptote band reaches lowest at its upper edge, with that band.
+
+    Settings whose asymptote band lies wholly outside their own
+    training/validation bracket are skipped when others remain.
+    """
+    if not curves:
+        return None
     trusted = {k: f for k, f in curves.items() if not f.midpoint_check(confidence)["disagree"]}
     pool = trusted or dict(curves)
     bands = {k: f.asymptote_band(confidence) for k, f in pool.items()}
     key = min(bands, key=lambda k: (bands[k][1], pool[k].asymptote, k))
     low, high = bands[key]
-    return NoiseFloor(float(pool[key].asymptote), float(low), float(high), int(key[0]),
-                      int(key[1]), 0)
+    return Plateau(float(pool[key].asymptote), float(low), float(high), int(key[0]), int(key[1]))
 
 
 def diagnose_grid(cells: pd.DataFrame, curves: dict, *, target: float, n_test: float,

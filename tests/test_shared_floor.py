@@ -31,14 +31,20 @@ def _cells(rng) -> pd.DataFrame:
 
 
 def test_steep_curves_cannot_extrapolate_below_the_shared_floor():
-    hits, refits = 0, 0
+    hits, refits, found = 0, 0, 0
     truth_at_6400 = SIGMA2 + 40.0 * 6400 ** -0.55   # the steep setting's known curve
     for seed in range(4):
         cells = _cells(np.random.default_rng(seed))
         free = fit_grid(cells, n_boot=40, seed=seed, share_floor=False)
         shared = fit_grid(cells, n_boot=40, seed=seed)
         floor = shared.floor
-        assert floor is not None and floor.low <= floor.value <= floor.high
+        if floor is None:
+            # the converged setting's floor band reaches below its own training error,
+            # so its errors do not bracket the floor: unknown is the honest answer
+            assert free[(0, 0)].asymptote_band(0.9)[0] <= free[(0, 0)].train_mean[-1]
+            continue
+        found += 1
+        assert floor.low <= floor.value <= floor.high
         hits += floor.low <= SIGMA2 <= floor.high
         # the floor never exceeds what was measured (up to noise)
         best_measured = cells[cells.train_size == 1600].groupby("capacity_index").validation_error.mean().min()
@@ -57,5 +63,6 @@ def test_steep_curves_cannot_extrapolate_below_the_shared_floor():
         # settings already above the floor are left as they were
         assert shared[(2, 0)].asymptote == free[(2, 0)].asymptote
         assert estimate_noise_floor(shared, 0.9).value == floor.value
+    assert found >= 3
     assert hits >= 3          # the 90% floor band holds sigma^2 in most draws
     assert refits >= 1
