@@ -47,17 +47,41 @@ from gridplan.planner import (
 
 def parse_operating_point(at: str, capacity_labels: list[str],
                           regularization_labels: list[str]) -> tuple[int, int]:
-    """'CAPACITY,REG' labels -> indices; capacity labels may contain commas themselves."""
+    """'CAPACITY,REG' labels -> indices; capacity labels may contain commas themselves.
+
+    Numbers match by value, so `1e-6`, `1e-06` and `0.000001` name the same setting.
+    """
     text = at.strip()
-    if len(regularization_labels) == 1 and text in capacity_labels:
-        return capacity_labels.index(text), 0
+
+    def find(word: str, labels: list[str]) -> int | None:
+        word = word.strip()
+        if word in labels:
+            return labels.index(word)
+        number = _as_number(word)
+        if number is None:
+            return None
+        matches = [i for i, label in enumerate(labels)
+                   if (value := _as_number(label)) is not None
+                   and math.isclose(value, number, rel_tol=1e-9, abs_tol=0.0)]
+        return matches[0] if len(matches) == 1 else None
+
+    if len(regularization_labels) == 1 and find(text, capacity_labels) is not None:
+        return find(text, capacity_labels), 0
     for cut in [i for i, ch in enumerate(text) if ch == ","]:
-        capacity, regularization = text[:cut].strip(), text[cut + 1:].strip()
-        if capacity in capacity_labels and regularization in regularization_labels:
-            return capacity_labels.index(capacity), regularization_labels.index(regularization)
+        ci, ri = find(text[:cut], capacity_labels), find(text[cut + 1:], regularization_labels)
+        if ci is not None and ri is not None:
+            return ci, ri
     raise GridplanError(
-        f"--at {at!r} names no setting of this grid; give CAPACITY,REG with capacity one of "
+        f"at {at!r} names no setting of this grid; give CAPACITY,REG with capacity one of "
         f"{', '.join(capacity_labels)} and regularisation one of {', '.join(regularization_labels)}.")
+
+
+def _as_number(text: str) -> float | None:
+    try:
+        value = float(text)
+    except ValueError:
+        return None
+    return value if math.isfinite(value) else None
 
 
 def _cost_model(config, overrides: dict) -> CostModel:
@@ -151,8 +175,8 @@ def _floor_at_capacity_edge(curves: dict, floor: NoiseFloor, n_capacity: int,
 
 def binding_limit(curves: dict, floor: NoiseFloor | None, plateau: Plateau | None,
                   target: float, confidence: float, top_size: int, capped_by_user: bool,
-                  bottoms: dict, labels, n_capacity: int, size: int) -> tuple[str, str]:
-    """(short limit name, sentence) for a target no plan reaches.
+                  bottoms: dict, labels, n_capacity: int, size: int) -> tuple[str, int | None, str]:
+    """(short limit name, rows to label next or None, sentence) for a target no plan reaches.
 
     Checked in order: the floor sits at the grid's capacity edge (capacity
     range); the data's noise floor is known and its band lies above the target
@@ -164,18 +188,18 @@ def binding_limit(curves: dict, floor: NoiseFloor | None, plateau: Plateau | Non
     """
     if floor is not None and target <= floor.high and _floor_at_capacity_edge(curves, floor, n_capacity,
                                                                           confidence):
-        return ("capacity range",
+        return ("capacity range", None,
                 f"the lowest error any setting approaches, {floor.value:.4g} [{floor.low:.4g}, "
                 f"{floor.high:.4g}], is at the grid's largest capacity and still falling with "
                 f"capacity, so it may be bias rather than noise: extend the grid (more capacity).")
     if floor is not None and target < floor.low:
-        return ("noise floor",
+        return ("noise floor", None,
                 f"the target {target:.4g} is below the data's noise floor {floor.value:.4g} "
                 f"[{floor.low:.4g}, {floor.high:.4g}] ({floor.evidence}): more data or more "
                 f"capacity will not help; only new information (better features or cleaner "
                 f"labels) can.")
     if floor is not None and target <= floor.high:
-        return ("noise floor",
+        return ("noise floor", None,
                 f"the target {target:.4g} is inside the noise-floor band {floor.value:.4g} "
                 f"[{floor.low:.4g}, {floor.high:.4g}]: with the data at hand no plan reaches it at "
                 f"{confidence:.0%} confidence. More rows narrow that band (the best forecasts near "
@@ -193,25 +217,25 @@ def binding_limit(curves: dict, floor: NoiseFloor | None, plateau: Plateau | Non
     if best is not None and best[1] > top_size:
         (ci, ri), needed = best
         cap = "max_samples" if capped_by_user else "the planning reach (no max_samples set)"
-        return ("max_samples",
+        return ("max_samples", None,
                 f"the target needs about {needed:,} training rows (setting {labels(ci, ri)}), "
                 f"beyond {cap} of {top_size:,}.")
     if central is not None:
         (ci, ri), rows = central
         more = max(size, min(rows, 4 * size) - size)
-        return ("forecast too uncertain",
+        return ("forecast too uncertain", more,
                 f"setting {labels(ci, ri)} is forecast to reach the target near {rows:,} training "
                 f"rows, but its {confidence:.0%} band does not get there; the forecast is too "
-                f"uncertain to plan on. Label about {more:,} more rows and run again: measured "
+                f"uncertain to plan on. Label about {_about(more)} more rows and run again: measured "
                 f"sizes narrow the band.")
     if plateau is not None and target < plateau.low:
         where = labels(plateau.capacity_index, plateau.regularization_index)
-        return ("model plateau",
+        return ("model plateau", None,
                 f"every setting of this model levels off above the target: the lowest plateau is "
                 f"{plateau.value:.4g} [{plateau.low:.4g}, {plateau.high:.4g}] (setting {where}). "
                 f"That is this model's limit, not necessarily the data's: the noise floor is "
                 f"unknown, so a more flexible model or more capacity may still reach the target.")
-    return ("capacity range",
+    return ("capacity range", None,
             "no setting of the grid reaches the target even with unlimited data: extend the grid "
             "(more capacity, other regularisation) or try another model.")
 
@@ -269,7 +293,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     else:
         ci, ri = parse_operating_point(at, capacity_labels, regularization_labels)
         if at_size[(at_size.capacity_index == ci) & (at_size.regularization_index == ri)].empty:
-            raise GridplanError(f"--at {at!r}: that setting has no successful cells at the largest "
+            raise GridplanError(f"operating point {at!r}: that setting has no successful cells at the largest "
                                 f"training size {size:,}.")
     start = State(ci, ri, size)
     setting_rows = cells[(cells.capacity_index == ci) & (cells.regularization_index == ri)]
@@ -300,10 +324,9 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     found = cheapest_plan(states.graph, start, states.is_goal)
     distance = costs_to_goal(states.graph, states.is_goal)
     reachable = found is not None
-    limit = None
-    limit_detail = None
+    limit = limit_detail = next_rows = None
     if not reachable:
-        limit, limit_detail = binding_limit(curves, floor, plateau, target, confidence,
+        limit, next_rows, limit_detail = binding_limit(curves, floor, plateau, target, confidence,
                                             ladder[-1], costs.max_samples is not None, bottoms,
                                             labels, len(capacity_labels), size)
 
@@ -367,6 +390,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
                             if plateau else None),
         "calibration": curves.calibration.as_dict() if curves.calibration is not None else None,
         "reachable": reachable, "binding_limit": limit, "binding_detail": limit_detail,
+        "label_next_rows": next_rows,
         "plan_cost": found[0] if found else None, "plan": plan, "actions": actions,
         "costs": {"per_sample": costs.per_sample, "capacity_step": costs.capacity_step,
                   "regularization_step": costs.regularization_step,
@@ -378,7 +402,53 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         "skipped": {"failed_rows": int(len(failed)), "settings": skipped,
                     "unfitted": list(getattr(curves, "unfitted", []))},
     }
-    return _plain(result)
+    result = _plain(result)
+    result["headline"] = headline(result, run.meta.get("capacity_param") or "capacity",
+                                  run.meta.get("regularization_param") or "regularization")
+    return result
+
+
+def headline(advice: dict, capacity_name: str, regularization_name: str) -> str:
+    """One plain sentence first: what to do, what it costs, what error to expect."""
+    op, target = advice["operating_point"], advice["target"]
+    if not advice["reachable"]:
+        limit = advice["binding_limit"]
+        reason = {"noise floor": "it lies at or below the data's noise floor",
+                  "max_samples": "it needs more rows than max_samples allows",
+                  "forecast too uncertain": "the forecasts are too uncertain to plan on yet",
+                  "model plateau": "every setting of this model levels off above it",
+                  "capacity range": "no setting of the grid gets there"}.get(limit, limit)
+        text = f"No plan reaches the target {_g(target)} at {advice['confidence']:.0%} confidence: {reason}"
+        if advice.get("label_next_rows"):
+            text += (f"; label about {_about(advice['label_next_rows'])} more rows and run again "
+                     f"to narrow the forecast")
+        return text + "."
+    if not advice["plan"]:
+        d = advice["diagnosis"]
+        return (f"Nothing to do: {capacity_name} {op['capacity']}, {regularization_name} "
+                f"{op['regularization']} at {op['size']:,} rows already meets the target "
+                f"{_g(target)} (measured {_g(d['validation_error'])}).")
+    end = advice["plan"][-1]["to"]
+    moves = []
+    if end["capacity"] != op["capacity"]:
+        moves.append(f"{capacity_name} {end['capacity']}")
+    if end["regularization"] != op["regularization"]:
+        moves.append(f"{regularization_name} {end['regularization']}")
+    words = f"Switch to {' and '.join(moves)}" if moves else ""
+    if end["size"] > op["size"]:
+        rows = f"label about {_about(end['size'] - op['size'])} more rows"
+        words = f"{words} and {rows}" if words else rows[0].upper() + rows[1:]
+    low, high = end["interval"]
+    return (f"{words}: expected {_g(end['predicted_error'])} ({_g(low)}-{_g(high)}), "
+            f"cost {_money(advice['plan_cost'])}.")
+
+
+def _about(rows: int) -> str:
+    """A row count rounded to two significant figures, for plain sentences."""
+    if rows < 100:
+        return f"{rows:,}"
+    digits = len(str(int(rows))) - 2
+    return f"{int(round(rows, -digits)):,}"
 
 
 def _step_words(edge, capacity_labels, regularization_labels, meta: dict) -> str:
@@ -395,12 +465,16 @@ def _step_words(edge, capacity_labels, regularization_labels, meta: dict) -> str
 
 # --- text ------------------------------------------------------------------------------------------
 
-def _g(value, digits: int = 4) -> str:
+def _g(value, digits: int = 3) -> str:
+    """Three significant figures."""
     return "-" if value is None else f"{value:.{digits}g}"
 
 
 def _money(value) -> str:
-    return "-" if value is None else f"{value:,.2f}"
+    """A cost: whole numbers without decimals, others with two."""
+    if value is None:
+        return "-"
+    return f"{value:,.0f}" if float(value).is_integer() else f"{value:,.2f}"
 
 
 def _interval(pair) -> str:
@@ -431,6 +505,8 @@ def render_advice(advice: dict) -> str:
     """Terminal text for an `advise` result."""
     op, d = advice["operating_point"], advice["diagnosis"]
     lines = [
+        advice["headline"],
+        "",
         f"Advice for {advice['run_dir']}  ({advice['metric']}, target {_g(advice['target'])}, "
         f"{advice['confidence']:.0%} confidence)",
         f"Operating point: capacity {op['capacity']}, regularisation {op['regularization']}, "
@@ -491,7 +567,13 @@ def render_advice(advice: dict) -> str:
         lines.append(f"No plan reaches the target. Binding limit: {advice['binding_limit']}.")
         lines.append(f"  {advice['binding_detail']}")
     lines += ["", "Next actions, cheapest plan first:"]
+    shown_data, other_sizes = False, []
     for item in advice["actions"]:
+        if item["action"] == "more-data" and item["to"] is not None:
+            if shown_data:
+                other_sizes.append(f"{item['to']['size']:,}")
+                continue
+            shown_data = True
         if item["to"] is None:
             lines.append(f"  {item['action']:<20} not possible: {item['reason']}")
             continue
@@ -506,6 +588,9 @@ def render_advice(advice: dict) -> str:
         else:
             tail = f"  cannot reach: {item['reason']}"
         lines.append(head + tail)
+    if other_sizes:
+        lines.append(f"  {'':<20} more data to other sizes, each with a dearer plan or none: "
+                     f"{', '.join(other_sizes)} rows")
     skipped = advice["skipped"]
     if skipped["failed_rows"] or skipped["unfitted"]:
         lines += ["", f"Skipped: {skipped['failed_rows']} failed fold rows"]

@@ -90,7 +90,7 @@ def test_numbers_behind_the_verdict_come_from_the_store(quadratic):
     assert d["validation_error"] == pytest.approx(rows.validation_error.mean(), rel=1e-12)
     text = render_advice(advice)
     assert "HIGH-BIAS" in text
-    assert f"{d['train_error']:.4g}" in text and f"{d['validation_error']:.4g}" in text
+    assert f"{d['train_error']:.3g}" in text and f"{d['validation_error']:.3g}" in text
 
 
 def test_default_operating_point_is_the_best_measured_setting(quadratic):
@@ -267,3 +267,34 @@ def test_a_tree_plateau_is_not_called_the_noise_floor(tmp_path):
         name="smooth.toml")
     smooth = advise(smooth_dir)
     assert smooth["verdict"] == "fine" and smooth["reachable"]
+
+
+def test_settings_are_named_by_value_as_the_config_writes_them():
+    labels = ["1e-06", "0.01", "1"]
+    for written in ("1e-6", "1e-06", "0.000001", "1.0E-6"):
+        assert parse_operating_point(f"2,{written}", ["1", "2"], labels) == (1, 0)
+    assert parse_operating_point("2.0,1", ["1", "2"], labels) == (1, 2)
+    with pytest.raises(GridplanError, match="names no setting"):
+        parse_operating_point("2,1e-5", ["1", "2"], labels)
+
+
+def test_the_headline_says_what_to_do_what_it_costs_and_what_to_expect(quadratic):
+    run_dir, curves = quadratic
+    advice = advise(run_dir, at="1,1e-06", curves=curves)
+    step = advice["plan"][-1]
+    low, high = step["to"]["interval"]
+    # e.g. "Switch to degree 2: expected 0.254 (0.24-0.268), cost 150."
+    assert advice["headline"] == (f"Switch to degree {step['to']['capacity']}: expected "
+                                  f"{step['predicted_error']:.3g} ({low:.3g}-{high:.3g}), cost 150.")
+    text = render_advice(advice)
+    assert text.splitlines()[0] == advice["headline"]
+    assert "150.00" not in text and "cost 150" in text          # whole costs without decimals
+    fine = advise(run_dir, curves=curves)
+    assert fine["headline"].startswith("Nothing to do: degree ")
+    blocked = advise(run_dir, target=0.8 * SIGMA ** 2, curves=curves)
+    assert blocked["headline"] == ("No plan reaches the target 0.2 at 90% confidence: it lies at or "
+                                   "below the data's noise floor.")
+    # more-data moves beyond the cheapest are listed once, on one line
+    lines = [line for line in render_advice(blocked).splitlines() if "more-data" in line]
+    assert len(lines) == 1
+    assert sum("more data to other sizes" in line for line in render_advice(blocked).splitlines()) == 1
