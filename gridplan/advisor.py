@@ -314,7 +314,8 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     bottoms = _bracket_bottoms(curves, confidence)
     forecast = state_error_forecasts(curves, _measured_states(ok, size, n_test, confidence),
                                      confidence=confidence,
-                                     floor_low=floor.low if floor else None, bracket_bottom=bottoms)
+                                     floor_low=floor.low if floor else None, bracket_bottom=bottoms,
+                                     floor_value=floor.value if floor else None)
     states = build_state_graph(forecast, n_capacity=len(capacity_labels),
                                n_regularization=len(regularization_labels), ladder=ladder,
                                capacity_labels=capacity_labels, costs=costs, target=target,

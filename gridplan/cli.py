@@ -13,6 +13,8 @@ from typing import Callable, Optional
 
 import typer
 
+from gridplan.wording import plural
+
 app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="Measure a capacity x regularisation x data-size grid, forecast its "
                        "learning curves and plan the cheapest way to a target error.")
@@ -75,7 +77,7 @@ def _describe(spec, run_dir: Path) -> str:
         ("capacity", cap_text),
         ("regularization", reg_text),
         ("train sizes", sizes),
-        ("resampling", f"{c.folds} folds x {c.repeats} repeats, seed {c.seed}"),
+        ("resampling", f"{plural(c.folds, 'fold')} x {plural(c.repeats, 'repeat')}, seed {c.seed}"),
         ("metric", c.metric + (f", target {c.target_error:g}" if c.target_error else "")),
         ("grid", f"{spec.n_cells} cells ({spec.n_settings} settings x {len(spec.sizes)} sizes), "
                  f"{spec.n_fits} fits"),
@@ -331,6 +333,7 @@ def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
            per_sample: Optional[float] = typer.Option(None, "--per-sample", help="Cost of one more labelled row."),
            capacity_step: Optional[float] = typer.Option(None, "--capacity-step", help="Cost of one capacity step."),
            regularization_step: Optional[float] = typer.Option(None, "--regularization-step",
+                                                               "--regularisation-step",
                                                                help="Cost of one regularisation step."),
            max_samples: Optional[int] = typer.Option(None, "--max-samples", help="Most training rows ever available."),
            boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve."),

@@ -313,8 +313,27 @@ def load_config(path: str | Path) -> Config:
     return parse_config(raw, path.resolve(), text)
 
 
+#: Other spellings accepted for keys: (section, alias) -> key.
+KEY_ALIASES = {("model", "regularisation"): "regularization",
+               ("costs", "regularisation_step"): "regularization_step"}
+
+
+def _resolve_aliases(path: Path, raw: dict[str, Any]) -> dict[str, Any]:
+    """The document with alias keys renamed; both spellings at once is refused."""
+    out = dict(raw)
+    for (section, alias), key in KEY_ALIASES.items():
+        body = out.get(section)
+        if isinstance(body, dict) and alias in body:
+            if key in body:
+                raise GridplanError(f"{path.name}: [{section}] has both {key} and {alias}; "
+                                    f"keep one.")
+            out[section] = {key if k == alias else k: v for k, v in body.items()}
+    return out
+
+
 def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     """Validate an already-parsed TOML document."""
+    raw = _resolve_aliases(path, raw)
     _check_keys(path, raw)
     data = _Reader(path, "data", raw["data"])
     model = _Reader(path, "model", raw["model"])

@@ -1179,8 +1179,8 @@ def _size(value) -> str:
 def render_summary(summary: dict) -> str:
     """Plain-text table of a curves summary, one line per setting."""
     conf = summary["confidence"]
-    headers = ["capacity", "regularization", "family", "noise floor [band]",
-               "error @ largest size", "error @ 2x size [band]", "samples needed [band]", "notes"]
+    headers = ["capacity", "regularization", "family", "plateau [band]",
+               "error @ largest size", "error @ 2x size [band]", "rows needed", "notes"]
     lines = []
     for s in summary["settings"]:
         notes = []
@@ -1190,12 +1190,16 @@ def render_summary(summary: dict) -> str:
             forecast = (f"{_number(s['predicted_2x'])} [{_number(s['predicted_2x_low'])}, "
                         f"{_number(s['predicted_2x_high'])}]")
         if s["reachable"]:
-            samples = (f"{_size(s['samples_needed'])} [{_size(s['samples_needed_low'])}, "
-                       f"{_size(s['samples_needed_high'])}]")
+            central = s["samples_needed_point"] or s["samples_needed"]
+            samples = (f"about {_size(central)}; {_size(s['samples_needed'])} to be "
+                       f"{conf:.0%} sure")
             if s["samples_needed"] <= s["largest_size"]:
                 notes.append("target already met at the measured sizes")
         elif s["reachable"] is None:
             samples = "-"
+        elif s["samples_needed_point"] is not None:
+            samples = f"about {_size(s['samples_needed_point'])}; not at {conf:.0%}"
+            notes.append(s["reason"])
         else:
             samples = "not reachable"
             notes.append(s["reason"])

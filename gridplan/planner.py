@@ -305,14 +305,16 @@ def rank_first_moves(states: StateGraph, start: State,
 def state_error_forecasts(curves: Mapping[tuple[int, int], object],
                           measured: Mapping[State, tuple[float, float, float]], *,
                           confidence: float, floor_low: float | None,
-                          bracket_bottom: Mapping[tuple[int, int], float] | None = None
+                          bracket_bottom: Mapping[tuple[int, int], float] | None = None,
+                          floor_value: float | None = None
                           ) -> Callable[[State], Forecast | None]:
     """Forecast function over states: measured (mean, low, high) where measured, else the curve band.
 
     `floor_low` (the grid noise floor's lower band edge) and, per setting,
     `bracket_bottom` (used for settings whose fitted asymptote contradicts
     their own data) bound forecasts from below: no forecast promises better
-    than that.
+    than that; a forecast's central value is never below `floor_value`, the
+    floor estimate the advice states.
     """
     bracket_bottom = bracket_bottom or {}
 
@@ -329,7 +331,8 @@ def state_error_forecasts(curves: Mapping[tuple[int, int], object],
                     bracket_bottom.get((state.capacity_index, state.regularization_index), 0.0))
         if not (np.isfinite(high) and np.isfinite(point)):
             return None
-        point, low, high = max(point, bound), max(low, bound), max(high, bound)
+        point = max(point, bound, floor_value if floor_value is not None else 0.0)
+        low, high = max(low, bound), max(high, bound, point)
         return Forecast(point, low, high, False)
 
     return forecast

@@ -31,6 +31,7 @@ import pandas as pd
 from gridplan.advisor import left_with_unlimited_data, mean_meets_but_interval_not
 from gridplan.errors import GridplanError
 from gridplan.metrics import METRIC_LABELS
+from gridplan.wording import plural
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.figure import Figure
@@ -371,7 +372,7 @@ def _at_a_glance(inputs: ReportInputs) -> Markup:
                            f"{_count(d['size'])} rows", "error", d["validation_error"]))
         if a["reachable"]:
             plan_detail = ("the operating point already meets the target" if not a["plan"] else
-                           f"{len(a['plan'])} step(s) to the target")
+                           f"{plural(len(a['plan']), 'step')} to the target")
             tiles.append(_tile("Cheapest plan", _money(a["plan_cost"]), plan_detail, "plan-cost",
                                a["plan_cost"]))
         else:
@@ -443,7 +444,7 @@ def _job_section(inputs: ReportInputs, number: int) -> Markup:
     cap_param = meta.get("capacity_param") or "capacity"
     reg_param = meta.get("regularization_param") or "regularisation"
     test_sizes = meta.get("test_sizes") or []
-    resampling = f"{meta.get('folds', '?')}-fold cross-validation x {meta.get('repeats', 1)} repeat(s)"
+    resampling = f"{meta.get('folds', '?')}-fold cross-validation x {plural(int(meta.get('repeats', 1)), 'repeat')}"
     if config is not None:
         resampling += f", seed {config.seed}"
     if test_sizes:
@@ -574,7 +575,7 @@ def _plan_section(inputs: ReportInputs, number: int) -> Markup:
                      _money(step["cumulative_cost"]), _with_band(step["predicted_error"], to["interval"]),
                      "measured" if to["measured"] else "forecast"])
     total = Markup(f"<p id=\"plan-total\" data-value=\"{esc(_data_value(a['plan_cost']))}\">Cheapest way "
-                   f"to the target {esc(_num(a['target']))}: <strong>{esc(len(a['plan']))} step(s), total "
+                   f"to the target {esc(_num(a['target']))}: <strong>{esc(plural(len(a['plan']), 'step'))}, total "
                    f"cost {esc(_money(a['plan_cost']))}</strong>.</p>")
     return _section("plan", number, "The plan", [
         total, *unsure,

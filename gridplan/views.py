@@ -34,6 +34,7 @@ import pandas as pd
 
 from gridplan.errors import GridplanError
 from gridplan.metrics import METRIC_LABELS
+from gridplan.wording import plural
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.axes import Axes
@@ -241,7 +242,8 @@ def heatmap_data(run: "Run", show: str = "validation", axis: str = "capacity",
     default the capacity with the lowest validation error at the largest size).
     """
     if show not in SHOWS:
-        raise GridplanError(f"Unknown --show value {show!r}; choose one of {', '.join(SHOWS)}.")
+        raise GridplanError(f"Unknown show value {show!r}; choose one of {', '.join(SHOWS)}.")
+    axis = "regularization" if axis == "regularisation" else axis   # the other spelling
     if axis not in HEATMAP_AXES:
         raise GridplanError(f"Unknown heatmap axis {axis!r}; choose one of "
                             f"{', '.join(HEATMAP_AXES)}.")
@@ -451,7 +453,7 @@ def _draw_advice(ax: "Axes", data: HeatmapData, advice: Mapping[str, Any], run: 
     if data.axis == "regularization":
         hidden = sum(p is None for p in points[1:])
         if hidden:
-            notes.append(f"  {hidden} plan step(s) at another capacity are not drawn on this map.")
+            notes.append(f"  {plural(hidden, 'plan step')} at another capacity not drawn on this map.")
         if start is not None and points[0] is None:
             notes.append("  The operating point is at another capacity and is not drawn on this map.")
     return notes
@@ -539,16 +541,16 @@ def _heatmap_title(run: "Run", data: HeatmapData) -> str:
 def _heatmap_notes(run: "Run", data: HeatmapData, target: float | None) -> list[str]:
     folds = run.meta.get("folds")
     repeats = run.meta.get("repeats", 1)
-    lines = [f"Each value is the mean over {folds} folds x {repeats} repeat(s) of "
+    lines = [f"Each value is the mean over {plural(folds, 'fold')} x {plural(repeats, 'repeat')} of "
              f"{_metric_name(run)}; the colour scale is "
              f"{'logarithmic' if _colour_norm(data.values).__class__.__name__ == 'LogNorm' else 'linear'}."]
     if target is None:
         lines.append("No target error is set, so no cells are outlined.")
     else:
         met = int(np.sum(data.validation <= target))
-        lines.append(f"Target validation error {target:g}: {met} cell(s) outlined meet it.")
+        lines.append(f"Target validation error {target:g}: {plural(met, 'cell')} outlined meet it.")
     if data.skipped_rows:
-        lines.append(f"{data.skipped_rows} failed fit(s) skipped; blank cells have no usable fold.")
+        lines.append(f"{plural(data.skipped_rows, 'failed fit')} skipped; blank cells have no usable fold.")
     return lines
 
 
@@ -670,7 +672,7 @@ def _draw_curves(ax: "Axes", points: CurvePoints, fit: "CurveFit | None", target
     ax.grid(True, which="major", color="#e6e6e6", linewidth=0.7)
     ax.set_axisbelow(True)
     if points.skipped_rows:
-        notes.append(f"{points.skipped_rows} failed fit(s) skipped")
+        notes.append(f"{plural(points.skipped_rows, 'failed fit')} skipped")
     return notes
 
 

@@ -293,3 +293,16 @@ def test_data_paths_that_are_not_regular_files_say_what_they_are(tmp_path):
     result = runner.invoke(app, ["check", str(tmp_path / "folder.csv")])
     assert result.exit_code == 1 and "config file" in result.output
     assert "is a directory, not a regular file" in result.output
+
+
+def test_the_other_spelling_of_regularization_is_accepted_as_an_alias(tmp_path):
+    from gridplan.config import load_config
+    linear_data(120, 2, 0.5, seed=0).to_csv(tmp_path / "data.csv", index=False)
+    sections = _with({"model.regularization": None})
+    sections["model"]["regularisation"] = {"values": [0.1, 1.0]}
+    sections["costs"] = {"regularisation_step": 7.0}
+    config = load_config(write_config(tmp_path, sections))
+    assert config.regularization.values == (0.1, 1.0)
+    assert config.costs.regularization_step == 7.0
+    sections["model"]["regularization"] = {"values": [0.1, 1.0]}
+    assert "has both regularization and regularisation" in _check(tmp_path, sections)
