@@ -344,8 +344,9 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         cumulative, current = 0.0, start
         for edge in found[1]:
             cumulative += edge.cost
+            before, after = states.forecasts[current].point, states.forecasts[edge.target].point
             plan.append({"action": edge.action, "cost": edge.cost, "cumulative_cost": cumulative,
-                         "predicted_error": states.forecasts[edge.target].point,
+                         "predicted_error": after, "worse_on_the_way": bool(after > before),
                          "from": describe(current), "to": describe(edge.target)})
             current = edge.target
 
@@ -564,6 +565,10 @@ def render_advice(advice: dict) -> str:
                              f"{_money(step['cumulative_cost'])}   predicted error "
                              f"{_g(step['predicted_error'])} {_interval(to['interval'])}"
                              f"{' (measured)' if to['measured'] else ''}")
+                if step.get("worse_on_the_way"):
+                    lines.append(f"     the error rises on this step, from "
+                                 f"{_g(step['from']['predicted_error'])}: it is the cheapest way "
+                                 f"to the steps after it, which end at the target")
     else:
         lines.append(f"No plan reaches the target. Binding limit: {advice['binding_limit']}.")
         lines.append(f"  {advice['binding_detail']}")

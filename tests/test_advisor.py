@@ -298,3 +298,21 @@ def test_the_headline_says_what_to_do_what_it_costs_and_what_to_expect(quadratic
     lines = [line for line in render_advice(blocked).splitlines() if "more-data" in line]
     assert len(lines) == 1
     assert sum("more data to other sizes" in line for line in render_advice(blocked).splitlines()) == 1
+
+
+def test_no_forecast_lies_below_the_stated_floor_and_rising_steps_say_why(quadratic):
+    # common practice, no published source: the advice never contradicts its own floor
+    run_dir, curves = quadratic
+    for target in (0.27, 0.3, 0.5):
+        advice = advise(run_dir, target=target, at="1,1e-06", curves=curves)
+        floor = advice["noise_floor"]
+        states = [s["to"] for s in advice["plan"]] + [a["to"] for a in advice["actions"] if a["to"]]
+        for state in states:
+            if not state["measured"]:
+                assert state["predicted_error"] >= floor - 1e-12
+        text = render_advice(advice)
+        for step in advice["plan"]:
+            assert step["worse_on_the_way"] == (step["to"]["predicted_error"]
+                                               > step["from"]["predicted_error"])
+            if step["worse_on_the_way"]:
+                assert "the error rises on this step" in text
