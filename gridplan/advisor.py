@@ -415,7 +415,11 @@ def headline(advice: dict, capacity_name: str, regularization_name: str) -> str:
     op, target = advice["operating_point"], advice["target"]
     if not advice["reachable"]:
         limit = advice["binding_limit"]
-        reason = {"noise floor": "it lies at or below the data's noise floor",
+        below = advice["noise_floor_band"] is not None and target < advice["noise_floor_band"][0]
+        reason = {"noise floor": ("it lies below the data's noise floor; only new information "
+                                  "(better features, cleaner labels) can help" if below else
+                                  "it lies inside the band of the data's noise floor; more rows "
+                                  "narrow that band"),
                   "max_samples": "it needs more rows than max_samples allows",
                   "forecast too uncertain": "the forecasts are too uncertain to plan on yet",
                   "model plateau": "every setting of this model levels off above it",

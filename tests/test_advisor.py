@@ -292,8 +292,9 @@ def test_the_headline_says_what_to_do_what_it_costs_and_what_to_expect(quadratic
     fine = advise(run_dir, curves=curves)
     assert fine["headline"].startswith("Nothing to do: degree ")
     blocked = advise(run_dir, target=0.8 * SIGMA ** 2, curves=curves)
-    assert blocked["headline"] == ("No plan reaches the target 0.2 at 90% confidence: it lies at or "
-                                   "below the data's noise floor.")
+    assert blocked["headline"] == ("No plan reaches the target 0.2 at 90% confidence: it lies below "
+                                   "the data's noise floor; only new information (better features, "
+                                   "cleaner labels) can help.")
     # more-data moves beyond the cheapest are listed once, on one line
     lines = [line for line in render_advice(blocked).splitlines() if "more-data" in line]
     assert len(lines) == 1
