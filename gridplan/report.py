@@ -380,9 +380,16 @@ def _at_a_glance(inputs: ReportInputs) -> Markup:
                                f"binding limit: {a['binding_limit']}", "plan-cost", css="unreachable"))
         scale = abs(d["validation_error"] or 1.0)
         band = a["noise_floor_band"]
-        tiles.append(_tile("Noise floor estimate", _num(_level(a["noise_floor"], scale)),
-                           _band(None if band is None else [_level(v, scale) for v in band])
-                           or "no estimate", "floor", a["noise_floor"]))
+        if a["noise_floor"] is not None:
+            tiles.append(_tile("Noise floor", _num(_level(a["noise_floor"], scale)),
+                               _band([_level(v, scale) for v in band]) or "", "floor",
+                               a["noise_floor"]))
+        else:
+            plateau = a.get("plateau_band")
+            tiles.append(_tile("Noise floor", "unknown",
+                               f"this model's lowest plateau {_num(a['plateau'])} "
+                               f"{_band(plateau) or ''}".strip() if a.get("plateau") is not None
+                               else "no estimate", "floor", None))
     else:
         ci, ri = _best_measured(inputs.cells)
         ok = inputs.cells[inputs.cells["status"] == "ok"]
@@ -395,7 +402,9 @@ def _at_a_glance(inputs: ReportInputs) -> Markup:
         tiles.append(_tile("Best validation error", _num(value), f"at {where}, {_count(size)} rows",
                            "error", value))
         tiles.append(_tile("Cheapest plan", "not planned", why, "plan-cost"))
-    body = [Markup(f"<div class=\"tiles\">{_join(tiles)}</div>")]
+    body = ([Markup(f"<p class=\"headline\" id=\"headline\">{esc(a['headline'])}</p>")]
+            if a is not None else [])
+    body.append(Markup(f"<div class=\"tiles\">{_join(tiles)}</div>"))
     if a is not None:
         body.append(_p(f"In short: {a['verdict_reason']}.", "lead"))
     else:
@@ -512,10 +521,20 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
         rows.append(("This setting's asymptote", _level_band(
             d["setting_asymptote"], d["setting_asymptote_band"], abs(d["validation_error"] or 1.0))))
     scale = abs(d["validation_error"] or 1.0)
-    floor = _level_band(a["noise_floor"], a["noise_floor_band"], scale)
-    if a.get("noise_floor_setting"):
-        floor += f" (lowest asymptote, at setting {a['noise_floor_setting']})"
-    rows.append(("Noise floor estimate", floor))
+    if a["noise_floor"] is not None:
+        floor = _level_band(a["noise_floor"], a["noise_floor_band"], scale)
+        floor += f" (at setting {a['noise_floor_setting']}: {a['noise_floor_evidence']})"
+        rows.append(("Noise floor", floor))
+    else:
+        rows.append(("Noise floor", "unknown: no converged settings of different capacity agree, "
+                                    "and none has its training error below its plateau"))
+        if a.get("plateau") is not None:
+            rows.append(("This model's lowest plateau (an upper bound on the floor)",
+                         _level_band(a["plateau"], a["plateau_band"], scale)
+                         + f" (at setting {a['plateau_setting']})"))
+    if a.get("calibration"):
+        from gridplan.calibration import Calibration
+        rows.append(("Forecasts beyond the data", Calibration(**a["calibration"]).sentence()))
     if d.get("bias_share") is not None:
         rows.append(("Share of the excess error", f"bias {d['bias_share']:.0%}, "
                                                   f"variance {d['variance_share']:.0%}"))
@@ -872,6 +891,7 @@ h2 .num { display: inline-block; min-width: 1.6em; color: var(--accent); }
 .tile-value { font-size: 26px; font-weight: 600; overflow-wrap: anywhere; }
 .tile-detail { font-size: 13px; color: var(--soft); overflow-wrap: anywhere; }
 .lead { font-size: 16px; margin: 14px 0 0; }
+.headline { font-size: 19px; font-weight: 600; margin: 6px 0 14px; }
 .note { background: var(--mark); border-left: 4px solid #c9a227; padding: 8px 12px; }
 .small { font-size: 13px; color: var(--soft); }
 .verdict .badge { display: inline-block; padding: 2px 10px; border: 2px solid currentColor;

@@ -261,6 +261,11 @@ def test_a_tree_plateau_is_not_called_the_noise_floor(tmp_path):
     assert advice["plateau"] is not None
     if advice["noise_floor"] is not None:
         assert advice["noise_floor_band"][0] <= 4.0 + 0.3
+    else:        # the report says the same as the JSON
+        from gridplan.report import write_report
+        html = write_report(tree_dir).read_text(encoding="utf-8")
+        assert 'id="tile-floor"' in html and ">unknown<" in html
+        assert "this model&#x27;s lowest plateau" in html or "this model's lowest plateau" in html
     smooth_dir, _ = run_frame(tmp_path, frame, {
         **base, "model": {"family": "poly-ridge", "capacity": {"values": [2, 3, 4]},
                           "regularization": {"values": [0.01, 1.0]}}}, out="smooth",

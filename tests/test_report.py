@@ -187,6 +187,7 @@ def test_verdict_plan_and_actions_equal_the_advisors(report):
     doc = parse(text)
     assert advice["plan"], "the fixture is meant to need a plan"
     assert doc.attrs_by_id["verdict"]["data-value"] == advice["verdict"]
+    assert doc.text_by_id["headline"].strip() == advice["headline"]      # the same sentence first
     assert advice["verdict_reason"] in doc.text_by_id["diagnosis"]
     assert float(doc.attrs_by_id["plan-total"]["data-value"]) == advice["plan_cost"]
     assert f"{advice['plan_cost']:,.2f}" in doc.text_by_id["plan-total"]
