@@ -577,13 +577,19 @@ def render_advice(advice: dict) -> str:
         lines.append(f"No plan reaches the target. Binding limit: {advice['binding_limit']}.")
         lines.append(f"  {advice['binding_detail']}")
     lines += ["", "Next actions, cheapest plan first:"]
-    shown_data, other_sizes = False, []
+    shown_data, other_sizes, tied = False, [], {}
     for item in advice["actions"]:
         if item["action"] == "more-data" and item["to"] is not None:
             if shown_data:
                 other_sizes.append(f"{item['to']['size']:,}")
                 continue
             shown_data = True
+        if item["reachable"] and item["plan_cost"] in tied:
+            tied[item["plan_cost"]].append(f"{item['action']} to {item['to']['capacity']},"
+                                           f"{item['to']['regularization']}")
+            continue
+        if item["reachable"]:
+            tied[item["plan_cost"]] = []
         if item["to"] is None:
             lines.append(f"  {item['action']:<20} not possible: {item['reason']}")
             continue
@@ -598,6 +604,9 @@ def render_advice(advice: dict) -> str:
         else:
             tail = f"  cannot reach: {item['reason']}"
         lines.append(head + tail)
+    for cost, others in tied.items():
+        if others:
+            lines.append(f"  {'':<20} same plan cost {_money(cost)} also by: {'; '.join(others)}")
     if other_sizes:
         lines.append(f"  {'':<20} more data to other sizes, each with a dearer plan or none: "
                      f"{', '.join(other_sizes)} rows")

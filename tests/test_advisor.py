@@ -322,3 +322,35 @@ def test_no_forecast_lies_below_the_stated_floor_and_rising_steps_say_why(quadra
                                                > step["from"]["predicted_error"])
             if step["worse_on_the_way"]:
                 assert "the error rises on this step" in text
+
+
+def test_actions_tied_on_plan_cost_collapse_to_one_line(quadratic):
+    run_dir, curves = quadratic
+    advice = advise(run_dir, at="1,1e-06", curves=curves)
+    text = render_advice(advice)
+    costs = [a["plan_cost"] for a in advice["actions"]
+             if a["reachable"] and a["action"] != "more-data"]
+    for cost in set(costs):
+        shown = [line for line in text.splitlines()
+                 if line.strip().startswith(("more-capacity", "less-capacity", "more-regularization",
+                                             "less-regularization"))
+                 and f"plan {cost:,.0f}" in line]
+        assert len(shown) <= 1          # one line per plan cost; the rest on a "same plan cost" line
+
+
+def test_a_report_after_advise_fits_no_curves(tmp_path, monkeypatch):
+    from gridplan import curvestore
+    from gridplan.report import write_report
+    run_dir, _ = run_frame(tmp_path, quadratic_data(300, SIGMA, seed=8), {
+        "data": {"target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2]},
+                  "regularization": {"values": [1e-3, 1.0]}},
+        "sizes": {"values": [20, 40, 80, 160, 240]}, "resampling": {"folds": 5},
+        "goal": {"target": 0.3}})
+    advise(run_dir)
+
+    def no_fitting(*args, **kwargs):
+        raise AssertionError("the curves were fitted again")
+
+    monkeypatch.setattr(curvestore, "fit_grid", no_fitting)
+    assert write_report(run_dir).is_file()
