@@ -167,7 +167,10 @@ def probe_scheduler(address: str, timeout: float) -> object:
         finally:
             comm.abort()
 
-    return asyncio.run(ask())
+    async def within_deadline() -> object:      # the steps together, too, within `timeout`
+        return await asyncio.wait_for(ask(), timeout)
+
+    return asyncio.run(within_deadline())
 
 
 def cluster_threads(client: "Client", address: str) -> int:
@@ -187,7 +190,9 @@ def check_workers_have_gridplan(client: "Client", address: str) -> None:
         mine = version("gridplan")
     except PackageNotFoundError:   # running from a source tree: nothing to compare with
         return
-    found = client.run(version, "gridplan", on_error="return")
+    found = _within(lambda: client.run(version, "gridplan", on_error="return"), WORKER_TIMEOUT,
+                    f"the dask workers of {address} did not report their gridplan version within "
+                    f"{WORKER_TIMEOUT:g} s; check that they are running and reachable.")
     for worker, theirs in sorted(found.items()):
         if isinstance(theirs, PackageNotFoundError):
             raise GridplanError(f"dask worker {worker} (scheduler {address}) does not have "
@@ -199,6 +204,27 @@ def check_workers_have_gridplan(client: "Client", address: str) -> None:
             raise GridplanError(f"dask worker {worker} has gridplan {theirs} but this machine "
                                 f"has {mine}; install the same version everywhere so the "
                                 f"numbers match.")
+
+
+def _within(call: Callable[[], object], seconds: float, failure: str) -> object:
+    """call() on a daemon thread; a GridplanError(failure) when it has not returned in time."""
+    import threading
+    outcome: dict = {}
+
+    def target() -> None:
+        try:
+            outcome["value"] = call()
+        except BaseException as exc:    # handed back to the caller's thread
+            outcome["error"] = exc
+
+    worker = threading.Thread(target=target, daemon=True)
+    worker.start()
+    worker.join(seconds)
+    if worker.is_alive():
+        raise GridplanError(failure)
+    if "error" in outcome:
+        raise outcome["error"]
+    return outcome["value"]
 
 
 def chunk_size(n_tasks: int, threads: int) -> int:

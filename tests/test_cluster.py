@@ -246,6 +246,22 @@ def test_workers_without_gridplan_or_with_another_version_are_refused():
         cluster.check_workers_have_gridplan(missing, "here")
 
 
+def test_workers_that_never_report_their_version_time_out(monkeypatch):
+    import threading
+    monkeypatch.setattr(cluster, "WORKER_TIMEOUT", 0.3)
+    released = threading.Event()
+
+    class Silent:
+        def run(self, function, *args, on_error="raise"):
+            released.wait(30)          # a worker that never answers
+
+    try:
+        with pytest.raises(GridplanError, match="did not report their gridplan version within 0.3 s"):
+            cluster.check_workers_have_gridplan(Silent(), "tcp://10.0.0.5:8786")
+    finally:
+        released.set()
+
+
 @pytest.mark.parametrize("tasks, threads, expected", [
     (0, 2, 1), (5, 2, 1), (9, 2, 2), (64, 2, 8), (600, 2, 32), (600, 64, 3), (10**6, 8, 32)])
 def test_chunk_size_gives_each_thread_several_chunks_of_bounded_size(tasks, threads, expected):
