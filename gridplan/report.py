@@ -870,68 +870,10 @@ def _footer(inputs: ReportInputs) -> Markup:
                   f"This file is self-contained: it needs no network and no scripts.</p></footer>")
 
 
-STYLE = """
-:root { --ink: #1e2629; --soft: #5b676d; --rule: #d5dcdf; --paper: #ffffff; --wash: #f3f6f4;
-        --accent: #1d5c8c; --mark: #fff4d6; }
-* { box-sizing: border-box; }
-body { margin: 0; background: var(--paper); color: var(--ink);
-       font: 15px/1.5 "Source Sans 3", "Segoe UI", "Helvetica Neue", Arial, sans-serif; }
-main { max-width: 1060px; margin: 0 auto; padding: 0 28px 40px; }
-.masthead { border-bottom: 3px solid var(--accent); padding: 26px 0 12px; margin-bottom: 18px; }
-.kicker { margin: 0; color: var(--accent); font-size: 13px; letter-spacing: .08em; text-transform: uppercase; }
-h1 { margin: 4px 0 2px; font-size: 30px; font-weight: 600; overflow-wrap: anywhere; }
-.byline { margin: 0; color: var(--soft); overflow-wrap: anywhere; }
-h2 { font-size: 20px; font-weight: 600; margin: 34px 0 10px; padding-bottom: 4px;
-     border-bottom: 1px solid var(--rule); }
-h2 .num { display: inline-block; min-width: 1.6em; color: var(--accent); }
-.tiles { display: flex; flex-wrap: wrap; gap: 12px; }
-.tile { flex: 1 1 200px; border: 1px solid var(--rule); border-top: 4px solid var(--accent);
-        background: var(--wash); padding: 10px 14px; }
-.tile-label { font-size: 12px; color: var(--soft); text-transform: uppercase; letter-spacing: .05em; }
-.tile-value { font-size: 26px; font-weight: 600; overflow-wrap: anywhere; }
-.tile-detail { font-size: 13px; color: var(--soft); overflow-wrap: anywhere; }
-.lead { font-size: 16px; margin: 14px 0 0; }
-.headline { font-size: 19px; font-weight: 600; margin: 6px 0 14px; }
-.note { background: var(--mark); border-left: 4px solid #c9a227; padding: 8px 12px; }
-.small { font-size: 13px; color: var(--soft); }
-.verdict .badge { display: inline-block; padding: 2px 10px; border: 2px solid currentColor;
-                  font-weight: 700; text-transform: uppercase; letter-spacing: .05em; }
-.verdict-fine { color: #2b6e3f; border-top-color: #2b6e3f; }
-.verdict-high-bias { color: #8a4b08; border-top-color: #8a4b08; }
-.verdict-high-variance { color: #5a3a8c; border-top-color: #5a3a8c; }
-.verdict-both { color: #9b1d3a; border-top-color: #9b1d3a; }
-.verdict-noise-floor { color: #34506e; border-top-color: #34506e; }
-.tile.verdict-fine .tile-value, .tile[class*="verdict-"] .tile-value { color: inherit; }
-.tile.unreachable { border-top-color: #9b1d3a; }
-.because { color: var(--ink); }
-.unreachable { color: #9b1d3a; }
-table { border-collapse: collapse; width: 100%; margin: 8px 0 14px; font-size: 13.5px; }
-th, td { text-align: left; vertical-align: top; padding: 5px 8px; border-bottom: 1px solid var(--rule);
-         overflow-wrap: anywhere; }
-thead th { border-bottom: 2px solid var(--ink); font-weight: 600; white-space: nowrap; }
-table.facts th { width: 30%; font-weight: 600; color: var(--soft); }
-table.numbers td { font-variant-numeric: tabular-nums; overflow-wrap: normal; }
-td.whole { white-space: nowrap; }
-.why { color: var(--soft); font-size: 12px; }
-tr.here td { background: var(--mark); font-weight: 600; }
-tr.muted td { color: var(--soft); }
-table.settings { font-size: 12.5px; }
-figure { margin: 14px 0 22px; }
-figure img { display: block; max-width: 100%; height: auto; margin: 0 auto; border: 1px solid var(--rule); }
-figcaption { font-size: 13px; color: var(--soft); margin-top: 6px; }
-ul.cautions li { margin-bottom: 6px; }
-footer { margin-top: 36px; padding-top: 8px; border-top: 1px solid var(--rule); font-size: 12px;
-         color: var(--soft); overflow-wrap: anywhere; }
-@page { size: A4; margin: 14mm; }
-@media print {
-  body { font-size: 11pt; }
-  main { max-width: none; padding: 0; }
-  .tile, .note, tr.here td { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
-  h2 { break-after: avoid; }
-  figure, .tiles, tr { break-inside: avoid; }
-  section#maps, section#curves { break-before: page; }
-}
-"""
+def _style() -> str:
+    """The report's CSS, kept beside this module as package data (report.css)."""
+    from importlib.resources import files
+    return files("gridplan").joinpath("report.css").read_text(encoding="utf-8")
 
 
 def report_html(inputs: ReportInputs) -> str:
@@ -948,7 +890,7 @@ def report_html(inputs: ReportInputs) -> str:
     title = f"gridplan report: {_run_name(inputs.run)}"
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
-            f"<title>{esc(title)}</title><style>{STYLE}</style></head><body><main>"
+            f"<title>{esc(title)}</title><style>{_style()}</style></head><body><main>"
             f"{_masthead(inputs)}{_at_a_glance(inputs)}{_join(parts)}{_footer(inputs)}"
             "</main></body></html>\n")
 
