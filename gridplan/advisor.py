@@ -30,6 +30,7 @@ from gridplan.diagnosis import (
     estimate_noise_floor,
 )
 from gridplan.errors import GridplanError
+from gridplan.wording import sig
 from gridplan.jsonable import plain as _plain
 from gridplan.planner import (
     CostModel,
@@ -189,21 +190,21 @@ def binding_limit(curves: dict, floor: NoiseFloor | None, plateau: Plateau | Non
     if floor is not None and target <= floor.high and _floor_at_capacity_edge(curves, floor, n_capacity,
                                                                           confidence):
         return ("capacity range", None,
-                f"the lowest error any setting approaches, {floor.value:.4g} [{floor.low:.4g}, "
-                f"{floor.high:.4g}], is at the grid's largest capacity and still falling with "
+                f"the lowest error any setting approaches, {floor.value:.3g} [{floor.low:.3g}, "
+                f"{floor.high:.3g}], is at the grid's largest capacity and still falling with "
                 f"capacity, so it may be bias rather than noise: extend the grid (more capacity).")
     if floor is not None and target < floor.low:
         return ("noise floor", None,
-                f"the target {target:.4g} is below the data's noise floor {floor.value:.4g} "
-                f"[{floor.low:.4g}, {floor.high:.4g}] ({floor.evidence}): more data or more "
+                f"the target {target:.3g} is below the data's noise floor {floor.value:.3g} "
+                f"[{floor.low:.3g}, {floor.high:.3g}] ({floor.evidence}): more data or more "
                 f"capacity will not help; only new information (better features or cleaner "
                 f"labels) can.")
     if floor is not None and target <= floor.high:
         return ("noise floor", None,
-                f"the target {target:.4g} is inside the noise-floor band {floor.value:.4g} "
-                f"[{floor.low:.4g}, {floor.high:.4g}]: with the data at hand no plan reaches it at "
+                f"the target {target:.3g} is inside the noise-floor band {floor.value:.3g} "
+                f"[{floor.low:.3g}, {floor.high:.3g}]: with the data at hand no plan reaches it at "
                 f"{confidence:.0%} confidence. More rows narrow that band (the best forecasts near "
-                f"{floor.value:.4g} may then qualify); only new information (better features or "
+                f"{floor.value:.3g} may then qualify); only new information (better features or "
                 f"cleaner labels) lowers the floor itself.")
     best, central = None, None
     for key, fit in curves.items():
@@ -232,7 +233,7 @@ def binding_limit(curves: dict, floor: NoiseFloor | None, plateau: Plateau | Non
         where = labels(plateau.capacity_index, plateau.regularization_index)
         return ("model plateau", None,
                 f"every setting of this model levels off above the target: the lowest plateau is "
-                f"{plateau.value:.4g} [{plateau.low:.4g}, {plateau.high:.4g}] (setting {where}). "
+                f"{plateau.value:.3g} [{plateau.low:.3g}, {plateau.high:.3g}] (setting {where}). "
                 f"That is this model's limit, not necessarily the data's: the noise floor is "
                 f"unknown, so a more flexible model or more capacity may still reach the target.")
     return ("capacity range", None,
@@ -424,7 +425,7 @@ def headline(advice: dict, capacity_name: str, regularization_name: str) -> str:
                   "forecast too uncertain": "the forecasts are too uncertain to plan on yet",
                   "model plateau": "every setting of this model levels off above it",
                   "capacity range": "no setting of the grid gets there"}.get(limit, limit)
-        text = f"No plan reaches the target {_g(target)} at {advice['confidence']:.0%} confidence: {reason}"
+        text = f"No plan reaches the target {target:g} at {advice['confidence']:.0%} confidence: {reason}"
         if advice.get("label_next_rows"):
             text += (f"; label about {_about(advice['label_next_rows'])} more rows and run again "
                      f"to narrow the forecast")
@@ -433,7 +434,7 @@ def headline(advice: dict, capacity_name: str, regularization_name: str) -> str:
         d = advice["diagnosis"]
         return (f"Nothing to do: {capacity_name} {op['capacity']}, {regularization_name} "
                 f"{op['regularization']} at {op['size']:,} rows already meets the target "
-                f"{_g(target)} (measured {_g(d['validation_error'])}).")
+                f"{target:g} (measured {_g(d['validation_error'])}).")
     end = advice["plan"][-1]["to"]
     moves = []
     if end["capacity"] != op["capacity"]:
@@ -473,7 +474,7 @@ def _step_words(edge, capacity_labels, regularization_labels, meta: dict) -> str
 
 def _g(value, digits: int = 3) -> str:
     """Three significant figures."""
-    return "-" if value is None else f"{value:.{digits}g}"
+    return "-" if value is None else sig(value, digits)
 
 
 def _money(value) -> str:
@@ -513,7 +514,7 @@ def render_advice(advice: dict) -> str:
     lines = [
         advice["headline"],
         "",
-        f"Advice for {advice['run_dir']}  ({advice['metric']}, target {_g(advice['target'])}, "
+        f"Advice for {advice['run_dir']}  ({advice['metric']}, target {advice['target']:g}, "
         f"{advice['confidence']:.0%} confidence)",
         f"Operating point: capacity {op['capacity']}, regularisation {op['regularization']}, "
         f"{op['size']:,} training rows ({op['chosen']})",

@@ -95,10 +95,10 @@ def render_backtest(result: dict) -> str:
              f"{'capacity':>10} {'regularization':>14} {'family':>6} {'predicted':>10} "
              f"{'band':>21} {'measured':>10} {'rel err':>8}  in band"]
     for r in result["rows"]:
-        band = f"[{r['low']:.4g}, {r['high']:.4g}]"
+        band = f"[{r['low']:.3g}, {r['high']:.3g}]"
         rel = "-" if r["rel_error"] is None else f"{r['rel_error']:.1%}"
         lines.append(f"{r['capacity']:>10} {r['regularization']:>14} {r['family']:>6} "
-                     f"{r['predicted']:>10.4g} {band:>21} {r['measured']:>10.4g} {rel:>8}  "
+                     f"{r['predicted']:>10.3g} {band:>21} {r['measured']:>10.3g} {rel:>8}  "
                      f"{'yes' if r['inside_band'] else 'no'}")
     if result.get("calibration"):
         from gridplan.calibration import Calibration

@@ -586,11 +586,11 @@ class CurveFit:
                       else "reachable with more data")
             return SamplesNeeded(target, confidence, True, high, low, high, point, reason)
         if target < floor_low:
-            reason = (f"target {target:.4g} is below the noise-floor band "
-                      f"[{floor_low:.4g}, {floor_high:.4g}]")
+            reason = (f"target {target:.3g} is below the noise-floor band "
+                      f"[{floor_low:.3g}, {floor_high:.3g}]")
         elif target <= floor_high:
-            reason = (f"target {target:.4g} lies inside the noise-floor band "
-                      f"[{floor_low:.4g}, {floor_high:.4g}], so it cannot be promised "
+            reason = (f"target {target:.3g} lies inside the noise-floor band "
+                      f"[{floor_low:.3g}, {floor_high:.3g}], so it cannot be promised "
                       f"at {confidence:.0%} confidence")
         else:
             reason = f"target needs more than {max_size:.3g} samples at {confidence:.0%} confidence"
@@ -969,7 +969,7 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
                     f"(e.g. capacity {fits[key].setting.capacity if fits[key].setting else key[0]} "
                     f"and {other.capacity if other else agreeing[0][0]})")
     else:
-        evidence = (f"a converged setting's training error ({float(train[-1]):.4g}) lies below "
+        evidence = (f"a converged setting's training error ({float(train[-1]):.3g}) lies below "
                     f"its plateau and its validation error above it")
     # The floor lies below every measured validation error (up to its noise).
     # When the converged settings' floor sits above another setting's
@@ -1168,8 +1168,9 @@ def curves_summary(fits: Mapping[tuple[int, int], CurveFit], *, target: float | 
                    "calibration": calibration.as_dict() if calibration is not None else None})
 
 
-def _number(value, digits: int = 4) -> str:
-    return "-" if value is None else f"{value:.{digits}g}"
+def _number(value, digits: int = 3) -> str:
+    from gridplan.wording import sig
+    return "-" if value is None else sig(value, digits)
 
 
 def _size(value) -> str:

@@ -184,14 +184,14 @@ def verdict_for(train_error: float, validation_error: float, target: float,
     variance_part = excess - bias_part if excess > 0 else 0.0
     bias_share = bias_part / excess if excess > 0 else 0.0
     variance_share = variance_part / excess if excess > 0 else 0.0
-    numbers = (f"validation {validation_error:.4g}, training {train_error:.4g}, gap {gap:.4g}, "
-               f"target {target:.4g}")
+    numbers = (f"validation {validation_error:.3g}, training {train_error:.3g}, gap {gap:.3g}, "
+               f"target {target:.3g}")
     if excess <= 0:
         return "fine", 0.0, 0.0, f"validation error meets the target ({numbers})"
     if noise_floor is not None and validation_error - noise_floor <= thresholds.floor_margin * noise_floor:
         return ("noise-floor", bias_share, variance_share,
                 f"validation error is within {thresholds.floor_margin:.0%} of the noise floor "
-                f"{noise_floor:.4g} ({numbers})")
+                f"{noise_floor:.3g} ({numbers})")
     significant = gap_test is not None and gap_test.significant(thresholds.alpha)
     if gap_test is None:
         gap_words = "too few folds to test the gap"
@@ -200,7 +200,7 @@ def verdict_for(train_error: float, validation_error: float, target: float,
                      f"(p={gap_test.p_value:.2g})")
     bias = bias_share >= thresholds.min_share
     variance = variance_share >= thresholds.min_share and significant
-    shares = (f"of the excess {excess:.4g} over the target, {bias_share:.0%} is training error "
+    shares = (f"of the excess {excess:.3g} over the target, {bias_share:.0%} is training error "
               f"above the target (bias) and {variance_share:.0%} the gap (variance); {gap_words}")
     if bias and variance:
         verdict = "both"

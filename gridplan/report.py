@@ -31,7 +31,7 @@ import pandas as pd
 from gridplan.advisor import left_with_unlimited_data, mean_meets_but_interval_not
 from gridplan.errors import GridplanError
 from gridplan.metrics import METRIC_LABELS
-from gridplan.wording import plural
+from gridplan.wording import plural, sig
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.figure import Figure
@@ -78,10 +78,15 @@ def _tag(name: str, content: Any = "", **attributes: Any) -> Markup:
 
 # --- number words -------------------------------------------------------------------------------
 
-def _num(value: Any, digits: int = 4) -> str:
+def _given(value: Any) -> str:
+    """A number the user gave (a target), as they wrote it."""
+    return "–" if value is None else f"{value:g}"
+
+
+def _num(value: Any, digits: int = 3) -> str:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return "–"
-    return f"{value:.{digits}g}"
+    return sig(value, digits) if isinstance(value, (int, float)) else f"{value:.{digits}g}"
 
 
 def _money(value: Any) -> str:
@@ -92,7 +97,7 @@ def _count(value: Any) -> str:
     return "–" if value is None else f"{int(value):,}"
 
 
-def _band(pair: Sequence[Any] | None, digits: int = 4) -> str:
+def _band(pair: Sequence[Any] | None, digits: int = 3) -> str:
     if not pair or pair[0] is None or pair[1] is None:
         return ""
     return f"[{_num(pair[0], digits)}, {_num(pair[1], digits)}]"
@@ -367,7 +372,7 @@ def _at_a_glance(inputs: ReportInputs) -> Markup:
         tiles.append(_tile("Verdict", a["verdict"], VERDICT_WORDS.get(a["verdict"], ""), "verdict",
                            a["verdict"], css=f"verdict-{a['verdict']}"))
         tiles.append(_tile("Validation error today", _num(d["validation_error"]),
-                           f"target {_num(a['target'])}, at "
+                           f"target {_given(a['target'])}, at "
                            f"{_setting_words(run, d['capacity'], d['regularization'])}, "
                            f"{_count(d['size'])} rows", "error", d["validation_error"]))
         if a["reachable"]:
@@ -477,7 +482,7 @@ def _job_section(inputs: ReportInputs, number: int) -> Markup:
         ("Training sizes (rows)", ", ".join(f"{int(s):,}" for s in meta.get("sizes", []))),
         ("Resampling", resampling),
         ("Metric", _metric_words(run)),
-        ("Target error", "not set" if inputs.target is None else _num(inputs.target)),
+        ("Target error", "not set" if inputs.target is None else _given(inputs.target)),
         ("Confidence for bands and plans", f"{inputs.confidence:.0%}"),
         ("Fits", fits),
     ]
@@ -510,7 +515,7 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
         ("Operating point", f"{_setting_words(run, op['capacity'], op['regularization'])}, "
                             f"{_count(op['size'])} training rows ({op['chosen']})"),
         ("Training error", f"{_num(d['train_error'])} (mean over {d['units']} folds)"),
-        ("Validation error", f"{_num(d['validation_error'])} (target {_num(a['target'])})"),
+        ("Validation error", f"{_num(d['validation_error'])} (target {_given(a['target'])})"),
         ("Gap (validation minus training)", _test_words(d["gap_test"], a["confidence"])),
     ]
     if d.get("previous_size") is not None:
@@ -575,13 +580,13 @@ def _plan_section(inputs: ReportInputs, number: int) -> Markup:
     if not a["reachable"]:
         return _section("plan", number, "The plan", [
             Markup(f"<p class=\"unreachable\" id=\"plan-total\">No plan reaches the target "
-                   f"{esc(_num(a['target']))}. Binding limit: <strong>{esc(a['binding_limit'])}"
+                   f"{esc(_given(a['target']))}. Binding limit: <strong>{esc(a['binding_limit'])}"
                    f"</strong>.</p>"),
             _p(a["binding_detail"])])
     if not a["plan"]:
         return _section("plan", number, "The plan", [
             Markup(f"<p id=\"plan-total\" data-value=\"{esc(_data_value(a['plan_cost']))}\">Nothing "
-                   f"to do: the operating point already meets the target {esc(_num(a['target']))} "
+                   f"to do: the operating point already meets the target {esc(_given(a['target']))} "
                    f"(plan cost {esc(_money(a['plan_cost']))}).</p>"),
             _p("The ranked moves below show what each change would cost and do.")])
     unsure = ([_p(mean_meets_but_interval_not(a["confidence"]) + " The plan makes it do so.", "note")]
@@ -594,7 +599,7 @@ def _plan_section(inputs: ReportInputs, number: int) -> Markup:
                      _money(step["cumulative_cost"]), _with_band(step["predicted_error"], to["interval"]),
                      "measured" if to["measured"] else "forecast"])
     total = Markup(f"<p id=\"plan-total\" data-value=\"{esc(_data_value(a['plan_cost']))}\">Cheapest way "
-                   f"to the target {esc(_num(a['target']))}: <strong>{esc(plural(len(a['plan']), 'step'))}, total "
+                   f"to the target {esc(_given(a['target']))}: <strong>{esc(plural(len(a['plan']), 'step'))}, total "
                    f"cost {esc(_money(a['plan_cost']))}</strong>.</p>")
     return _section("plan", number, "The plan", [
         total, *unsure,

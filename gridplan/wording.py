@@ -6,3 +6,9 @@ from __future__ import annotations
 def plural(count: int, word: str, many: str | None = None) -> str:
     """'1 repeat', '2 repeats', '1,200 rows'."""
     return f"{count:,} {word if count == 1 else (many or word + 's')}"
+
+
+def sig(value: float, digits: int = 3) -> str:
+    """A number to `digits` significant figures, trailing zeros kept: 5.00, 0.0402, 1.44e+04."""
+    text = f"{value:#.{digits}g}"
+    return text[:-1] if text.endswith(".") else text

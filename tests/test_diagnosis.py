@@ -68,7 +68,7 @@ def test_verdict_rules(train, valid, floor, p, expected):
     assert verdict == expected
     if expected not in ("fine",):
         assert bias_share + variance_share == pytest.approx(1.0)
-    assert f"{valid:.4g}" in reason and f"{train:.4g}" in reason
+    assert f"{valid:.3g}" in reason and f"{train:.3g}" in reason
 
 
 def test_thresholds_are_checked():

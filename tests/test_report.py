@@ -22,6 +22,7 @@ from gridplan.config import load_config
 from gridplan.errors import GridplanError
 from gridplan.report import BACKTEST_FILE, REPORT_NAME, read_backtest, write_report
 from gridplan.store import FoldRow, Store
+from gridplan.wording import sig
 
 N_BOOT = 10
 TARGET = 0.3
@@ -203,13 +204,13 @@ def test_verdict_plan_and_actions_equal_the_advisors(report):
     assert [r[1] for r in action_rows] == [a["action"] for a in advice["actions"]]
     diagnosis = doc.text_by_id["diagnosis"]
     d = advice["diagnosis"]
-    assert f"{d['train_error']:.4g} (mean over {d['units']} folds)" in diagnosis
-    assert f"{d['validation_error']:.4g} (target {advice['target']:.4g})" in diagnosis
+    assert f"{sig(d['train_error'])} (mean over {d['units']} folds)" in diagnosis
+    assert f"{sig(d['validation_error'])} (target {advice['target']:g})" in diagnosis
     gap = d["gap_test"]
-    assert (f"{gap['mean']:.4g}, 90% interval [{gap['low']:.4g}, {gap['high']:.4g}]; "
-            f"t = {gap['t']:.3g} on {gap['dof']} df, one-sided p = {gap['p_value']:.2g}") in diagnosis
+    assert (f"{sig(gap['mean'])}, 90% interval [{sig(gap['low'])}, {sig(gap['high'])}]; "
+            f"t = {sig(gap['t'])} on {gap['dof']} df, one-sided p = {gap['p_value']:.2g}") in diagnosis
     low, high = advice["noise_floor_band"]
-    assert f"{advice['noise_floor']:.4g} [{low:.4g}, {high:.4g}]" in diagnosis
+    assert f"{sig(advice['noise_floor'])} [{sig(low)}, {sig(high)}]" in diagnosis
 
 
 def test_settings_table_has_one_row_per_measured_setting(report, grid):
@@ -302,7 +303,7 @@ def test_backtest_is_shown_with_its_numbers(variant):
     rows = section_tables(text, "backtest")[0]
     assert len(rows) == len(result["rows"])
     for row, r in zip(rows, result["rows"]):
-        assert row[4] == f"{r['measured']:.4g}"
+        assert row[4] == f"{r['measured']:.3g}"
         assert row[6] == ("yes" if r["inside_band"] else "no")
 
 
