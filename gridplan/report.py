@@ -876,7 +876,7 @@ def _footer(inputs: ReportInputs) -> Markup:
 
 
 def _style() -> str:
-    """The report's CSS, kept beside this module as package data (report.css)."""
+    """The report's CSS, kept beside this module as package data (report.css, CSS only)."""
     from importlib.resources import files
     return files("gridplan").joinpath("report.css").read_text(encoding="utf-8")
 
@@ -892,12 +892,22 @@ def report_html(inputs: ReportInputs) -> str:
             continue
         number += 1
         parts.append(build(inputs, number))
-    title = f"gridplan report: {_run_name(inputs.run)}"
-    return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
-            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
-            f"<title>{esc(title)}</title><style>{_style()}</style></head><body><main>"
-            f"{_masthead(inputs)}{_at_a_glance(inputs)}{_join(parts)}{_footer(inputs)}"
-            "</main></body></html>\n")
+    return render_page(title=f"gridplan report: {_run_name(inputs.run)}",
+                       style=Markup(_style()), masthead=_masthead(inputs),
+                       glance=_at_a_glance(inputs), sections=_join(parts),
+                       footer=_footer(inputs))
+
+
+def render_page(**fields: Any) -> str:
+    """The page template (report.html, package data) filled in, every field escaped.
+
+    Only Markup, built here from escaped parts, goes in as it is; any other
+    value is escaped, so a field cannot inject HTML by mistake.
+    """
+    from importlib.resources import files
+    from string import Template
+    page = Template(files("gridplan").joinpath("report.html").read_text(encoding="utf-8"))
+    return page.substitute({name: esc(value) for name, value in fields.items()})
 
 
 def _writable_target(run_dir: Path, out: str | Path | None) -> Path:

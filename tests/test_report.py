@@ -387,3 +387,11 @@ def test_without_a_target_the_settings_table_drops_target_columns(variant):
     head = text[start:text.index("</thead>", start)]
     assert "verdict" not in head and "rows for the target" not in head
     assert len(section_tables(text, "settings")[0][0]) == 9
+
+
+def test_the_page_template_escapes_every_field_that_is_not_built_markup():
+    from gridplan.report import Markup, render_page
+    page = render_page(title="<script>x</script>", style=Markup("b{}"), masthead="a & b",
+                       glance=Markup("<p>ok</p>"), sections="", footer="")
+    assert "&lt;script&gt;x&lt;/script&gt;" in page and "<script>" not in page
+    assert "a &amp; b" in page and "<p>ok</p>" in page and "<style>b{}</style>" in page
