@@ -443,7 +443,10 @@ def _nodes_at_depths(tree, X32: np.ndarray, depths: Sequence[int]) -> dict[int, 
     nan_left = np.asarray(tree.missing_go_to_left, dtype=bool)
     node = np.zeros(X32.shape[0], dtype=np.intp)
     reached = {0: node.copy()} if 0 in depths else {}
-    for level in range(1, max(depths) + 1):
+    # Below the tree's own depth every row sits in a leaf: a depth limit of
+    # 10^18 must not walk 10^18 levels.
+    deepest = min(max(depths), int(tree.max_depth))
+    for level in range(1, deepest + 1):
         moving = np.flatnonzero(left[node] != TREE_LEAF)
         if moving.size:
             at = node[moving]
@@ -452,6 +455,9 @@ def _nodes_at_depths(tree, X32: np.ndarray, depths: Sequence[int]) -> dict[int, 
             node[moving] = np.where(go_left, left[at], right[at])
         if level in depths:
             reached[level] = node.copy()
+    for depth in depths:
+        if depth > deepest:
+            reached[depth] = node.copy()
     return reached
 
 

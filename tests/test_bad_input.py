@@ -306,3 +306,20 @@ def test_the_other_spelling_of_regularization_is_accepted_as_an_alias(tmp_path):
     assert config.costs.regularization_step == 7.0
     sections["model"]["regularization"] = {"values": [0.1, 1.0]}
     assert "has both regularization and regularisation" in _check(tmp_path, sections)
+
+
+def test_a_huge_tree_depth_is_quick_and_equals_the_full_tree(tmp_path):
+    # A depth limit far beyond any tree's depth reads the full tree, without walking
+    # 9e18 levels (it once hung `check`).
+    from gridplan.api import check as check_config, open_run, run
+    from gridplan.config import load_config
+    frame = linear_data(200, 2, 0.5, seed=4)
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    sections = _with({"model.family": "tree", "model.regularization": None,
+                      "model.capacity": {"values": [40, 9_000_000_000_000_000_000]}})
+    config = load_config(write_config(tmp_path, sections))
+    check_config(config)
+    cells = open_run(run(config, out=tmp_path / "run", jobs=1)).cells()
+    deep, huge = (cells[cells.capacity_index == i].sort_values(["train_size", "fold"])
+                  for i in (0, 1))
+    np.testing.assert_array_equal(deep.validation_error.to_numpy(), huge.validation_error.to_numpy())
