@@ -847,6 +847,16 @@ def _fit_problems(problems: list[_Problem], families: tuple[str, ...],
     return results
 
 
+#: Most bootstrap resamples per curve; past it the stacked fits outgrow memory.
+MAX_BOOT = 10_000
+
+
+def _check_boot(n_boot: int) -> None:
+    if isinstance(n_boot, bool) or not isinstance(n_boot, int) or not 2 <= n_boot <= MAX_BOOT:
+        raise GridplanError(f"The bootstrap takes 2 to {MAX_BOOT:,} resamples per curve, "
+                            f"got {n_boot!r}.")
+
+
 def _check_families(families: Iterable[str]) -> tuple[str, ...]:
     families = tuple(families)
     for name in families:
@@ -875,8 +885,7 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
     are repeats of one pass over the same rows (see `CurveFit.unseen_se`).
     """
     families = _check_families(families)
-    if n_boot < 2:
-        raise GridplanError(f"The bootstrap needs at least 2 resamples, got {n_boot}.")
+    _check_boot(n_boot)
     problem = _problem(sizes, fold_errors, train_fold_errors, setting, n_repeats, seed,
                        asymptote_min)
     result = _fit_problems([problem], families, n_boot)[0]
@@ -1091,8 +1100,7 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
     if cells.empty:
         raise GridplanError("The cells table is empty, so there are no learning curves to fit.")
     families = _check_families(families)
-    if n_boot < 2:
-        raise GridplanError(f"The bootstrap needs at least 2 resamples, got {n_boot}.")
+    _check_boot(n_boot)
     settings = _settings_data(cells, seed)
     grid = GridCurves()
     for data, result in zip(settings, _fit_settings(settings, families, n_boot)):

@@ -323,3 +323,15 @@ def test_a_huge_tree_depth_is_quick_and_equals_the_full_tree(tmp_path):
     deep, huge = (cells[cells.capacity_index == i].sort_values(["train_size", "fold"])
                   for i in (0, 1))
     np.testing.assert_array_equal(deep.validation_error.to_numpy(), huge.validation_error.to_numpy())
+
+
+def test_bootstrap_counts_out_of_range_are_one_sentence(tmp_path):
+    from tests.helpers import run_frame
+    run_dir, _ = run_frame(tmp_path, linear_data(120, 2, 0.5, seed=0), {
+        "data": {"target": "y"}, "model": BASE["model"],
+        "sizes": {"values": [10, 20, 40, 80]}, "resampling": {"folds": 3},
+        "goal": {"target": 0.3}})
+    for boot in ("1", "100000000"):
+        result = runner.invoke(app, ["advise", str(run_dir), "--boot", boot])
+        assert result.exit_code == 1 and "Traceback" not in result.output
+        assert "The bootstrap takes 2 to 10,000 resamples per curve" in result.output
