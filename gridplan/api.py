@@ -195,6 +195,17 @@ RUN_FILES = (STORE_NAME, f"{STORE_NAME}-wal", f"{STORE_NAME}-shm", f"{STORE_NAME
 EXPORTS_KEY = "exports"   # store meta: resolved path -> sha256 of each export written
 
 
+def refuse_run_file(run_dir: str | Path, out: str | Path, example: str | Path) -> Path:
+    """The resolved output path, refused when it is one of the run folder's own files."""
+    run_dir, out = Path(run_dir), Path(out)
+    check_path_text(out, "output")
+    target = out.resolve()
+    if target.parent == run_dir.resolve() and target.name in RUN_FILES:
+        raise GridplanError(f"{out} is the run folder's own {target.name}; write to another "
+                            f"file name, e.g. {example}.")
+    return target
+
+
 def export_cells(run_dir: str | Path, out: str | Path, *, force: bool = False) -> int:
     """Write the per-fold table as CSV (or Parquet by extension); returns the row count.
 
@@ -207,10 +218,7 @@ def export_cells(run_dir: str | Path, out: str | Path, *, force: bool = False) -
     run_dir, out = Path(run_dir), Path(out)
     check_path_text(out, "export")
     run = open_run(run_dir)
-    target = out.resolve()
-    if target.parent == run_dir.resolve() and target.name in RUN_FILES:
-        raise GridplanError(f"{out} is the run folder's own {target.name}; export to another "
-                            f"file name, e.g. {run_dir / 'cells.csv'}.")
+    target = refuse_run_file(run_dir, out, run_dir / "cells.csv")
     if not target.parent.is_dir():
         raise GridplanError(f"cannot write {out}: the folder {target.parent} does not exist.")
     if target.is_dir():

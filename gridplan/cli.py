@@ -296,6 +296,7 @@ def _plot_curves(run_dir: Path, summary: dict, output: Optional[Path], boot: int
     fits = api.fit_curves(run_dir, n_boot=boot)
     figure = views.small_multiples_figure(run, fits, target=summary.get("target"))
     path = output or (Path(run_dir) / "curves.png")
+    api.refuse_run_file(run_dir, path, Path(run_dir) / "curves.png")
     views.save_figure(figure, path)
     return path
 
@@ -320,7 +321,9 @@ def heatmap(run_dir: Path = typer.Argument(..., help="Run folder."),
             advice = make_advice(run_dir, target=target)
     figure = views.heatmap_figure(run, show=show, axis=axis, capacity=capacity, advice=advice,
                                   target=target)
-    path = views.save_figure(figure, output or Path(run_dir) / f"heatmap-{axis}-{show}.png")
+    default = Path(run_dir) / f"heatmap-{axis}-{show}.png"
+    api.refuse_run_file(run_dir, output or default, default)
+    path = views.save_figure(figure, output or default)
     typer.echo(f"heatmap written to {path}")
 
 

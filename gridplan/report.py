@@ -913,6 +913,8 @@ def render_page(**fields: Any) -> str:
 def _writable_target(run_dir: Path, out: str | Path | None) -> Path:
     """The report path, refused early when it cannot be written."""
     path = Path(out) if out is not None else run_dir / REPORT_NAME
+    from gridplan.api import refuse_run_file
+    refuse_run_file(run_dir, path, run_dir / REPORT_NAME)
     if path.is_dir():
         raise GridplanError(f"cannot write the report to {path}: it is a folder; give a file name "
                             f"such as {path / REPORT_NAME}.")

@@ -248,3 +248,18 @@ def test_a_scheduler_that_accepts_but_never_answers_fails_in_one_sentence(tmp_pa
     finally:
         listener.close()
     assert address in str(caught.value) and accepted    # it did accept the connection
+
+
+def test_report_and_figures_never_replace_the_run_folders_own_files(tmp_path):
+    from typer.testing import CliRunner
+    from gridplan.cli import app
+    run_dir = _small_run(tmp_path)
+    before = (run_dir / "store.sqlite").read_bytes()
+    for args in (["report", str(run_dir), "-o", str(run_dir / "store.sqlite"), "--target", "0.5"],
+                 ["heatmap", str(run_dir), "-o", str(run_dir / "store.sqlite")],
+                 ["curves", str(run_dir), "--plot", "-o", str(run_dir / "config.toml")]):
+        result = CliRunner().invoke(app, args)
+        assert result.exit_code == 1, result.output
+        assert "is the run folder's own" in result.output and "Traceback" not in result.output
+    assert (run_dir / "store.sqlite").read_bytes() == before
+    assert len(api.open_run(run_dir).cells()) == 4 * 3
