@@ -84,8 +84,8 @@ class Calibration:
         direction = ("optimistic" if lean > CLEAR_LEAN else "pessimistic" if lean < -CLEAR_LEAN
                      else "about right")
         text = (f"refitted on their smaller sizes, {self.settings} settings forecast their larger "
-                f"ones with a median error of {self.median_abs_rel_error:.1%} "
-                f"({self.optimistic_share:.0%} of {self.checks} forecasts too low): this run's "
+                f"ones with a median error of {self.median_abs_rel_error or 0.0:.1%} "
+                f"({self.optimistic_share or 0.0:.0%} of {self.checks} forecasts too low): this run's "
                 f"curves have been {direction}")
         if self.lean > 0:
             text += (f", so forecasts count on only {1 - self.lean:.0%} of the further drop "
@@ -130,9 +130,11 @@ def fit_calibration(drops: np.ndarray, residuals: np.ndarray, variances: np.ndar
         return math.sqrt(share * fitted ** 2 + (1 - share) * prior_value ** 2)
 
     applied = min(1.0, share * lean_hat) if lean_hat > CLEAR_LEAN else 0.0
+    positive = level > 0
+    median = float(np.median(np.abs(r[positive]) / level[positive])) if positive.any() else 0.0
     return Calibration(lean_hat, spread_hat, level_hat, applied, shrunk(spread_hat, PRIOR_SPREAD),
                        shrunk(level_hat, PRIOR_LEVEL_SPREAD), int(d.size), int(settings),
-                       float(np.median(np.abs(r) / level)), float(np.mean(r > 0)))
+                       median, float(np.mean(r > 0)))
 
 
 def self_checks(settings_data: list, fits: dict, families: tuple[str, ...]):

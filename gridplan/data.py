@@ -128,6 +128,9 @@ def load_dataset(config: Config) -> Dataset:
         y = y_raw.to_numpy(dtype=float)
         if not np.isfinite(y).all():
             raise GridplanError(f"{name}: the target column {config.target!r} has infinite values.")
+        if np.all(y == y[0]):
+            raise GridplanError(f"{name}: the target column {config.target!r} is constant (every "
+                                f"value is {y[0]:g}), so there is nothing to learn.")
     else:
         y = y_raw.to_numpy()
         if not is_numeric_dtype(y_raw):

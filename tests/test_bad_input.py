@@ -122,6 +122,9 @@ def test_bad_data_cases(tmp_path):
     rare["y"] = ["a"] * 118 + ["b"] * 2
     cases.append((rare, _with({"data.task": "classification", "goal.metric": "error_rate"}),
                   "class 'b' of 'y' has only 2 rows, fewer than the 3 folds"))
+    constant = base.copy()
+    constant["y"] = 1.5
+    cases.append((constant, _with({}), "the target column 'y' is constant (every value is 1.5)"))
     tiny = base.head(5)
     cases.append((tiny, _with({}), "too few for 3 folds"))
     for frame, sections, expected in cases:
