@@ -45,6 +45,8 @@ PRIOR_SETTINGS = 6.0
 #: A lean counts (is said and applied) when more than this share of the
 #: forecast drops failed to happen (or, negative, was exceeded).
 CLEAR_LEAN = 0.05
+#: Fewest pooled checks on which a lean is applied (below it, only reported).
+MIN_LEAN_CHECKS = 10
 #: Refits use sizes up to the last ORIGINS measured ones, keeping at least
 #: MIN_FIT_SIZES sizes to fit on.
 ORIGINS = 3
@@ -90,6 +92,8 @@ class Calibration:
         if self.lean > 0:
             text += (f", so forecasts count on only {1 - self.lean:.0%} of the further drop "
                      f"their curve promises")
+        elif direction == "optimistic":
+            text += f" (too few checks, {self.checks}, to correct forecasts for it)"
         return text + (f"; bands carry {self.spread:.0%} of each forecast drop and "
                        f"{self.level_spread:.1%} of the forecast per doubling beyond the data as "
                        f"shape error")
@@ -129,7 +133,8 @@ def fit_calibration(drops: np.ndarray, residuals: np.ndarray, variances: np.ndar
     def shrunk(fitted: float, prior_value: float) -> float:
         return math.sqrt(share * fitted ** 2 + (1 - share) * prior_value ** 2)
 
-    applied = min(1.0, share * lean_hat) if lean_hat > CLEAR_LEAN else 0.0
+    applied = (min(1.0, share * lean_hat) if lean_hat > CLEAR_LEAN and d.size >= MIN_LEAN_CHECKS
+               else 0.0)
     positive = level > 0
     median = float(np.median(np.abs(r[positive]) / level[positive])) if positive.any() else 0.0
     return Calibration(lean_hat, spread_hat, level_hat, applied, shrunk(spread_hat, PRIOR_SPREAD),

@@ -586,10 +586,10 @@ class CurveFit:
                       else "reachable with more data")
             return SamplesNeeded(target, confidence, True, high, low, high, point, reason)
         if target < floor_low:
-            reason = (f"target {target:.3g} is below the noise-floor band "
+            reason = (f"target {target:g} is below this setting's plateau band "
                       f"[{floor_low:.3g}, {floor_high:.3g}]")
         elif target <= floor_high:
-            reason = (f"target {target:.3g} lies inside the noise-floor band "
+            reason = (f"target {target:g} lies inside this setting's plateau band "
                       f"[{floor_low:.3g}, {floor_high:.3g}], so it cannot be promised "
                       f"at {confidence:.0%} confidence")
         else:
