@@ -52,7 +52,7 @@ MIN_LEAN_CHECKS = 10
 ORIGINS = 3
 MIN_FIT_SIZES = 4
 #: Bootstrap resamples per refit (only their spread at the held sizes is used).
-CHECK_BOOT = 24
+CHECK_BOOT = 12
 #: Spreads searched for the maximum-likelihood fit.
 SPREAD_GRID = np.concatenate([[0.0], np.geomspace(1e-3, 10.0, 80)])
 LEVEL_GRID = np.concatenate([[0.0], np.geomspace(1e-3, 1.0, 60)])
