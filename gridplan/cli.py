@@ -313,6 +313,7 @@ def heatmap(run_dir: Path = typer.Argument(..., help="Run folder."),
             target: Optional[float] = typer.Option(None, "--target", help="Target error (default: the config's).")):
     """Draw the grid as a heatmap of training size against capacity or regularisation."""
     from gridplan import api, views
+    axis = "regularization" if axis == "regularisation" else axis   # the other spelling
     run = api.open_run(run_dir)
     advice = None
     if with_plan:
