@@ -18,7 +18,7 @@ import pandas as pd
 from gridplan.checks import check_path_text
 from gridplan.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
 from gridplan.errors import GridplanError
-from gridplan.store import CONFIG_COPY, STORE_NAME, Store
+from gridplan.store import CONFIG_COPY, CURVES_NAME, STORE_NAME, Store
 
 if TYPE_CHECKING:   # the grid side (scikit-learn) is imported only where a grid is resolved
     from gridplan.spec import GridSpec
@@ -34,11 +34,8 @@ def default_run_dir(config: Config) -> Path:
 
 def effective_jobs(config: Config, jobs: int | None) -> int:
     """Worker count: the option, else the config; -1 means every core."""
-    from gridplan.config import MAX_JOBS
-    n = config.jobs if jobs is None else jobs
-    if n == 0 or abs(n) > MAX_JOBS:
-        raise GridplanError(f"jobs must be -1 (all cores) or a count from 1 to {MAX_JOBS:,}, "
-                            f"got {n:,}.")
+    from gridplan.config import check_jobs
+    n = check_jobs(config.jobs if jobs is None else jobs, "jobs")
     return max(1, os.cpu_count() or 1) if n < 0 else n
 
 
@@ -191,7 +188,7 @@ def open_run(run_dir: str | Path) -> Run:
 
 #: Files of a run folder that an export may never replace.
 RUN_FILES = (STORE_NAME, f"{STORE_NAME}-wal", f"{STORE_NAME}-shm", f"{STORE_NAME}-journal",
-             CONFIG_COPY, LOCK_NAME, "curves.json")
+             CONFIG_COPY, LOCK_NAME, CURVES_NAME)
 EXPORTS_KEY = "exports"   # store meta: resolved path -> sha256 of each export written
 
 
@@ -216,15 +213,13 @@ def export_cells(run_dir: str | Path, out: str | Path, *, force: bool = False) -
     """
     from gridplan.data import file_fingerprint
     run_dir, out = Path(run_dir), Path(out)
-    check_path_text(out, "export")
     run = open_run(run_dir)
     target = refuse_run_file(run_dir, out, run_dir / "cells.csv")
     if not target.parent.is_dir():
         raise GridplanError(f"cannot write {out}: the folder {target.parent} does not exist.")
     if target.is_dir():
         raise GridplanError(f"cannot write {out}: it is a folder; give a file name.")
-    with Store.open_existing(run_dir) as store:
-        written = store.meta().get(EXPORTS_KEY, {})
+    written = run.meta.get(EXPORTS_KEY, {})
     if target.exists() and not force:
         ours = target.is_file() and written.get(str(target)) == file_fingerprint(target)
         if not ours:

@@ -36,7 +36,7 @@ from gridplan.errors import GridplanError
 #: Prior shape errors (relative error of a forecast's further drop; relative
 #: error of the forecast per doubling beyond the data) and their weight in
 #: settings. Set on the corpus (benchmarks/corpus.py): with these, x4
-#: backtests put 94% of measurements inside the 90% band pooled, every member
+#: backtests put 96% of measurements inside the 90% band pooled, every member
 #: at least 67%; a run's own checks, which reach only a doubling or two,
 #: found less shape error than the x4 backtests show.
 PRIOR_SPREAD = 0.3

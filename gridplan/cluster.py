@@ -64,7 +64,7 @@ def run_on_cluster(spec: GridSpec, store: Store, address: str, *,
     """
     _require_dask()
     register_parallel_backend(BACKEND_NAME, ReportingDaskBackend)
-    client = connect(address, timeout=CONNECT_TIMEOUT if connect_timeout is None else connect_timeout)
+    client = connect(address, timeout=connect_timeout)
     try:
         threads = cluster_threads(client, address)
         check_workers_have_gridplan(client, address)

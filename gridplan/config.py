@@ -456,10 +456,7 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     cost_obj = Costs(**cost_values, max_samples=max_samples,
                      feature_groups={k: float(v) for k, v in groups.items()})
 
-    jobs = run.get("jobs", "int", default=-1)
-    if jobs == 0 or abs(jobs) > MAX_JOBS:
-        raise GridplanError(f"{run.where('jobs')} must be -1 (all cores) or a count from 1 to "
-                            f"{MAX_JOBS:,}, got {jobs:,}.")
+    jobs = check_jobs(run.get("jobs", "int", default=-1), run.where("jobs"))
     scheduler = run.get("scheduler", "str")
     limit = run.get("fit_time_limit", "number")
     if limit is not None and not 0 < limit <= MAX_FIT_SECONDS:
@@ -481,6 +478,14 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         target_error=target_error, confidence=confidence, costs=cost_obj, jobs=jobs,
         scheduler=scheduler, fit_time_limit=limit, name=name, max_fits=max_fits,
         fast_path=run.get("fast_path", "bool", default=True), thresholds=thresholds)
+
+
+def check_jobs(jobs: int, where: str) -> int:
+    """A worker count: -1 (all cores) or 1 .. MAX_JOBS."""
+    if jobs == 0 or abs(jobs) > MAX_JOBS:
+        raise GridplanError(f"{where} must be -1 (all cores) or a count from 1 to {MAX_JOBS:,}, "
+                            f"got {jobs:,}.")
+    return jobs
 
 
 def check_run_name(name: str, where: str) -> str:

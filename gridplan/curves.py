@@ -34,6 +34,7 @@ from typing import Callable, Iterable, Mapping
 import numpy as np
 import pandas as pd
 
+from gridplan.batchfit import fit_batch, nonnegative_line, parameters_view
 from gridplan.errors import GridplanError
 from gridplan.jsonable import plain as _plain
 
@@ -69,10 +70,6 @@ DEFAULT_BOOT = 100
 
 #: Largest training size the samples-needed search will consider.
 DEFAULT_MAX_SIZE = 1e12
-
-#: Cap on least-squares evaluations per parameter; a fit that has not
-#: converged by then keeps its best point so far.
-MAX_EVALUATIONS_PER_PARAM = 40
 
 #: Doublings beyond the data after which the level shape error stops growing:
 #: the corpus measures it two doublings out (x4) and no further.
@@ -257,8 +254,6 @@ EXP3_RATES = np.geomspace(0.05, 500.0, 40)
 def _scan_start(x, y, w, basis: Callable[[np.ndarray, np.ndarray], np.ndarray],
                 rates: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per row of (K, n): the rate whose non-negative (asymptote, amplitude) line fits best."""
-    from gridplan.batchfit import nonnegative_line
-
     with np.errstate(all="ignore"):
         shapes = basis(x[:, None, :], rates[None, :, None])          # (K, R, n)
     a, b, rss = nonnegative_line(shapes, y[:, None, :], w[:, None, :])
@@ -306,8 +301,6 @@ def _fit_family(fam: Family, x, y, w, starts: list[np.ndarray],
     `floor` (scalar or (K,)) bounds the asymptote, theta[:, 0], from below.
     Rows whose every start failed get cost inf.
     """
-    from gridplan.batchfit import fit_batch
-
     lower = np.tile(np.array(fam.lower, dtype=float), (len(x), 1))
     lower[:, 0] = np.maximum(lower[:, 0], floor)
     upper = np.array(fam.upper, dtype=float)
@@ -502,7 +495,7 @@ class CurveFit:
         x = m / self.scale
         fam = FAMILIES[self.family]
         with np.errstate(all="ignore"):
-            replicates = fam.evaluate(x[None, :], self.boot_theta.T[:, :, None])
+            replicates = fam.evaluate(x[None, :], parameters_view(self.boot_theta))
         raw = fam.evaluate(x, self.theta)
         low, high = self._band_from(raw, replicates, confidence)
         if not self.calibrated:
@@ -759,7 +752,7 @@ def _choose_families(x, y, se, counts, families: tuple[str, ...], floor) -> tupl
         theta, cost = _fit_family(fam, xs, ys, ws, _starts(name, xs, ys, ws),
                                   np.asarray(floor)[eligible])
         with np.errstate(all="ignore"):
-            predicted = fam.evaluate(xs, theta.T[:, :, None])
+            predicted = fam.evaluate(xs, parameters_view(theta))
         gaps = np.where(held_mask[eligible], np.abs(predicted - ys), 0.0).sum(axis=1)
         gaps = gaps / held[eligible]
         for row, gap, c in zip(eligible, gaps, cost):

@@ -20,8 +20,8 @@ import pandas as pd
 
 from gridplan.curves import (DEFAULT_BOOT, DEFAULT_FAMILIES, CurveFit, GridCurves, SettingInfo,
                              SharedFloor, fit_grid)
+from gridplan.store import CURVES_NAME
 
-CURVES_NAME = "curves.json"
 #: Bumped whenever fitting changes what it returns, so older files are ignored.
 FORMAT_VERSION = 3
 #: States of the cells kept at once (a backtest's subset beside the full run, say).

@@ -18,6 +18,7 @@ from gridplan.errors import GridplanError
 
 STORE_NAME = "store.sqlite"
 CONFIG_COPY = "config.toml"
+CURVES_NAME = "curves.json"      # fitted curves kept by gridplan.curvestore
 
 SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
