@@ -316,7 +316,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     forecast = state_error_forecasts(curves, _measured_states(ok, size, n_test, confidence),
                                      confidence=confidence,
                                      floor_low=floor.low if floor else None, bracket_bottom=bottoms,
-                                     floor_value=floor.value if floor else None)
+                                     floor_value=floor.value if floor else None, sizes=ladder)
     states = build_state_graph(forecast, n_capacity=len(capacity_labels),
                                n_regularization=len(regularization_labels), ladder=ladder,
                                capacity_labels=capacity_labels, costs=costs, target=target,

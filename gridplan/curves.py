@@ -75,7 +75,7 @@ DEFAULT_MAX_SIZE = 1e12
 #: the corpus measures it two doublings out (x4) and no further.
 LEVEL_DOUBLINGS_CAP = 2.0
 #: Points of the log grid on which the upper band edge is made monotone beyond the data.
-MONOTONE_GRID = 1024
+MONOTONE_GRID = 256
 
 _TINY = 1e-12
 
@@ -559,10 +559,20 @@ class CurveFit:
     # -- samples needed
     def samples_needed(self, target: float, confidence: float = 0.9,
                        max_size: float = DEFAULT_MAX_SIZE) -> SamplesNeeded:
-        """Smallest training size whose upper band edge reaches `target` (None if never)."""
+        """Smallest training size whose upper band edge reaches `target` (None if never).
+
+        Kept per (target, confidence, max_size): the advice and the summary ask alike.
+        """
         if not np.isfinite(target) or target < 0:
             raise GridplanError(f"The target error must be a non-negative number, got {target!r}.")
         _check_confidence(confidence)
+        key = ("samples needed", float(target), float(confidence), float(max_size))
+        if key not in self._tables:
+            self._tables[key] = self._samples_needed(float(target), float(confidence),
+                                                     float(max_size))
+        return self._tables[key]
+
+    def _samples_needed(self, target: float, confidence: float, max_size: float) -> SamplesNeeded:
         fam = FAMILIES[self.family]
         grid = np.geomspace(1.0, max_size, 721)
         if self.drop_lean > 0:

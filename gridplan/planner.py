@@ -306,7 +306,8 @@ def state_error_forecasts(curves: Mapping[tuple[int, int], object],
                           measured: Mapping[State, tuple[float, float, float]], *,
                           confidence: float, floor_low: float | None,
                           bracket_bottom: Mapping[tuple[int, int], float] | None = None,
-                          floor_value: float | None = None
+                          floor_value: float | None = None,
+                          sizes: Sequence[int] = ()
                           ) -> Callable[[State], Forecast | None]:
     """Forecast function over states: measured (mean, low, high) where measured, else the curve band.
 
@@ -314,21 +315,31 @@ def state_error_forecasts(curves: Mapping[tuple[int, int], object],
     `bracket_bottom` (used for settings whose fitted asymptote contradicts
     their own data) bound forecasts from below: no forecast promises better
     than that; a forecast's central value is never below `floor_value`, the
-    floor estimate the advice states.
+    floor estimate the advice states. A setting's forecasts at `sizes` (the
+    planner's ladder) are computed together the first time one is asked for.
     """
     bracket_bottom = bracket_bottom or {}
+    ahead: dict[tuple[int, int], dict[float, tuple[float, float, float]]] = {}
+
+    def curve_values(fit, key: tuple[int, int], size: float) -> tuple[float, float, float]:
+        known = ahead.setdefault(key, {})
+        if size not in known:
+            batch = np.array(sorted({float(s) for s in sizes} | {size}))
+            points = np.asarray(fit.predict(batch), dtype=float)
+            lows, highs = (np.asarray(v, dtype=float) for v in fit.band(batch, confidence))
+            known.update(zip(batch.tolist(), zip(points.tolist(), lows.tolist(), highs.tolist())))
+        return known[size]
 
     def forecast(state: State) -> Forecast | None:
         if state in measured:
             mean, low, high = measured[state]
             return Forecast(mean, low, high, True)
-        fit = curves.get((state.capacity_index, state.regularization_index))
+        key = (state.capacity_index, state.regularization_index)
+        fit = curves.get(key)
         if fit is None:
             return None
-        point = float(fit.predict(float(state.size)))
-        low, high = (float(v) for v in fit.band(float(state.size), confidence))
-        bound = max(floor_low if floor_low is not None else 0.0,
-                    bracket_bottom.get((state.capacity_index, state.regularization_index), 0.0))
+        point, low, high = curve_values(fit, key, float(state.size))
+        bound = max(floor_low if floor_low is not None else 0.0, bracket_bottom.get(key, 0.0))
         if not (np.isfinite(high) and np.isfinite(point)):
             return None
         point = max(point, bound, floor_value if floor_value is not None else 0.0)
