@@ -18,10 +18,10 @@ import pandas as pd
 from gridplan.checks import check_path_text
 from gridplan.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
 from gridplan.errors import GridplanError
-from gridplan.store import CONFIG_COPY, CURVES_NAME, STORE_NAME, Store
+from gridplan.store import CONFIG_COPY, CURVES_NAME, MODELS_KEY, STORE_NAME, Store
 
 if TYPE_CHECKING:   # the grid side (scikit-learn) is imported only where a grid is resolved
-    from gridplan.spec import GridSpec
+    from gridplan.spec import GridSpec, RunSpec
 
 LOCK_NAME = "run.lock"
 DEFAULT_OUTPUTS = Path("outputs")
@@ -65,8 +65,9 @@ def run_lock(run_dir: Path) -> Iterator[None]:
         handle.close()
 
 
-def prepare_run_dir(spec: GridSpec, run_dir: Path) -> Store:
+def prepare_run_dir(spec: RunSpec | GridSpec, run_dir: Path) -> Store:
     """Create or reopen the run folder; refuse one that holds a different grid."""
+    spec = as_run_spec(spec)
     try:
         run_dir.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
@@ -86,25 +87,33 @@ def prepare_run_dir(spec: GridSpec, run_dir: Path) -> Store:
                 f"{run_dir} holds a run of a different grid ({_difference(old, identity)} "
                 f"changed); pass --out NEW_FOLDER for a new run, or delete the folder to start over.")
     c = spec.config
+    models = [_model_meta(m) for m in spec.models]
     store.set_meta({
         "identity": identity, "fingerprint": spec.fingerprint(),
         "config_name": c.source.name, "data_path": str(c.data_path), "task": c.task,
-        "metric": c.metric, "target_column": c.target, "model": c.model_name,
-        "family": spec.plan.family,
-        "capacity_param": c.capacity.param if c.capacity.feature_sets is None else "features",
-        "regularization_param": c.regularization.param,
+        "metric": c.metric, "target_column": c.target,
+        **{k: v for k, v in models[0].items() if k != "axes"},
+        "models": models,
         "n_rows": spec.dataset.n_rows, "sizes": list(spec.sizes),
         "folds": c.folds, "repeats": c.repeats,
         "test_sizes": [int(len(f.test)) for f in spec.folds],
         "train_fold_sizes": [int(len(f.train)) for f in spec.folds],
     })
-    store.set_axes({
-        "capacity": list(zip(c.capacity.labels, _values(c.capacity))),
-        "regularization": list(zip(c.regularization.labels, list(c.regularization.values))),
-        "size": [(str(m), m) for m in spec.sizes],
-    })
+    store.set_axes(models[0]["axes"])
     (run_dir / CONFIG_COPY).write_text(c.text or "", encoding="utf-8")
     return store
+
+
+def _model_meta(spec: GridSpec) -> dict:
+    """One model's entry in the store meta: its names, parameters and axes."""
+    c = spec.config
+    return {"model": c.model_name, "model_label": spec.model_label, "family": spec.plan.family,
+            "capacity_param": c.capacity.param if c.capacity.feature_sets is None else "features",
+            "regularization_param": c.regularization.param,
+            "axes": {"capacity": list(zip(c.capacity.labels, _values(c.capacity))),
+                     "regularization": list(zip(c.regularization.labels,
+                                                list(c.regularization.values))),
+                     "size": [(str(m), m) for m in spec.sizes]}}
 
 
 def _difference(old: dict, new: dict) -> str:
@@ -120,27 +129,45 @@ def _values(axis) -> list:
 
 def run(config: Config | str | Path, *, out: str | Path | None = None, jobs: int | None = None,
         scheduler: str | None = None, allow_any_estimator: bool = False,
-        progress=None, spec: GridSpec | None = None) -> Path:
-    """Evaluate a config's grid, resuming an earlier partial run in the same folder."""
+        progress=None, spec: RunSpec | GridSpec | None = None) -> Path:
+    """Evaluate a config's grid (every model table), resuming an earlier partial run in the same folder."""
     from gridplan.runner import run_grid
+    from gridplan.spec import resolve_run
     if not isinstance(config, Config):
         config = load_config(config)
-    from gridplan.spec import resolve
-    spec = spec or resolve(config, allow_any_import=allow_any_estimator)
+    spec = as_run_spec(spec or resolve_run(config, allow_any_import=allow_any_estimator))
     run_dir = Path(out) if out is not None else default_run_dir(config)
     check_path_text(run_dir, "run folder")
     address = scheduler or config.scheduler
     with _locked(run_dir):
-        store = prepare_run_dir(spec, run_dir)
-        try:
-            if address:
-                from gridplan.cluster import run_on_cluster
-                run_on_cluster(spec, store, address, progress=progress)
-            else:
-                run_grid(spec, store, jobs=effective_jobs(config, jobs), progress=progress)
-        finally:
-            store.close()
+        prepare_run_dir(spec, run_dir).close()
+        done_before = 0
+        for index, model in enumerate(spec.models):
+            store = Store(run_dir / STORE_NAME, model=index)
+            step = _offset_progress(progress, done_before, spec.n_fits)
+            try:
+                if address:
+                    from gridplan.cluster import run_on_cluster
+                    run_on_cluster(model, store, address, progress=step)
+                else:
+                    run_grid(model, store, jobs=effective_jobs(config, jobs), progress=step)
+            finally:
+                store.close()
+            done_before += model.n_fits
     return run_dir
+
+
+def as_run_spec(spec: RunSpec | GridSpec) -> RunSpec:
+    """A one-model GridSpec as a RunSpec; a RunSpec as it is."""
+    from gridplan.spec import GridSpec, RunSpec
+    return RunSpec(spec.config, (spec,)) if isinstance(spec, GridSpec) else spec
+
+
+def _offset_progress(progress, before: int, total: int):
+    """One model's progress (done, its total) reported as the whole run's (done, total)."""
+    if progress is None:
+        return None
+    return lambda done, _own_total: progress(before + done, total)
 
 
 @contextmanager
@@ -155,24 +182,65 @@ def _locked(run_dir: Path) -> Iterator[None]:
 
 @dataclass
 class Run:
-    """A run folder opened for reading."""
+    """A run folder opened for reading, seen through one of its model tables (`model`)."""
 
     run_dir: Path
     meta: dict
     axes: dict
     config: Config | None
+    model: int = 0
+
+    @property
+    def model_names(self) -> list[str]:
+        """Every model table's name, in config order (one entry for a single [model])."""
+        entries = self.meta.get(MODELS_KEY) or []
+        if not entries:
+            return [self.meta.get("model_label") or self.meta.get("model") or "model"]
+        return [e.get("model_label") or e.get("model") for e in entries]
+
+    @property
+    def model_name(self) -> str:
+        return self.model_names[self.model]
 
     def cells(self) -> pd.DataFrame:
-        """The tidy per-fold table."""
-        with Store.open_existing(self.run_dir) as store:
+        """This model's tidy per-fold table."""
+        with Store.open_existing(self.run_dir, model=self.model) as store:
             return store.cells()
 
+    def all_cells(self) -> pd.DataFrame:
+        """Every model's per-fold table, one after another (the `model` column tells them apart)."""
+        frames = [self.for_model(i).cells() for i in range(len(self.model_names))]
+        return pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
 
-def open_run(run_dir: str | Path) -> Run:
-    """Open a run folder written by `run` (today's or from another machine)."""
+    def for_model(self, model: str | int) -> "Run":
+        """The same run seen through another model table (by name or index)."""
+        return open_run(self.run_dir, model=model)
+
+
+def model_index(names: list[str], model: str | int | None, where: str = "model") -> int:
+    """The index of a model table named `model` (None: the first); a clear error otherwise."""
+    if model is None:
+        return 0
+    if isinstance(model, int) and not isinstance(model, bool):
+        if 0 <= model < len(names):
+            return model
+    elif model in names:
+        return names.index(model)
+    raise GridplanError(f"{where} {model!r} is not a model of this run; it has "
+                        f"{', '.join(names)}.")
+
+
+def open_run(run_dir: str | Path, model: str | int | None = None) -> Run:
+    """Open a run folder written by `run` (today's or from another machine).
+
+    `model` names the model table to see (default: the first).
+    """
     run_dir = Path(run_dir)
     check_path_text(run_dir, "run folder")
     with Store.open_existing(run_dir) as store:
+        names = Run(run_dir, store.meta(), {}, None).model_names
+    index = model_index(names, model)
+    with Store.open_existing(run_dir, model=index) as store:
         meta, axes = store.meta(), store.axes()
     config = None
     copy = run_dir / CONFIG_COPY
@@ -183,7 +251,9 @@ def open_run(run_dir: str | Path) -> Run:
                                   copy.resolve(), copy.read_text(encoding="utf-8"))
         except (GridplanError, tomllib.TOMLDecodeError):
             config = None
-    return Run(run_dir=run_dir, meta=meta, axes=axes, config=config)
+    if config is not None and len(config.models) > 1:
+        config = config.for_model(index) if index < len(config.models) else None
+    return Run(run_dir=run_dir, meta=meta, axes=axes, config=config, model=index)
 
 
 #: Files of a run folder that an export may never replace.
@@ -225,7 +295,7 @@ def export_cells(run_dir: str | Path, out: str | Path, *, force: bool = False) -
         if not ours:
             raise GridplanError(f"{out} already exists and is not an earlier export of this run; "
                                 f"pass --force to replace it.")
-    frame = run.cells()
+    frame = run.all_cells()
     temporary = target.with_name(f".{target.name}.{os.getpid()}.partial")
     try:
         if out.suffix.lower() in (".parquet", ".pq"):
@@ -255,12 +325,12 @@ def _remember_export(run_dir: Path, target: Path, digest: str) -> None:
         pass
 
 
-def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> GridSpec:
-    """Validate a config against its data and return the resolved grid."""
+def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> RunSpec:
+    """Validate a config against its data and return the resolved grid of every model table."""
     if not isinstance(config, Config):
         config = load_config(config)
-    from gridplan.spec import resolve
-    return resolve(config, allow_any_import=allow_any_estimator)
+    from gridplan.spec import resolve_run
+    return resolve_run(config, allow_any_import=allow_any_estimator)
 
 
 def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0):

@@ -59,24 +59,17 @@ def _busy(message: str):
 
 
 def _describe(spec, run_dir: Path) -> str:
-    from gridplan.runner import fast_path_kind
+    """The grid a config describes, a line per fact (a block per model table)."""
     c, d = spec.config, spec.dataset
-    cap = c.capacity
-    cap_text = (f"feature sets: {', '.join(cap.labels)}" if cap.feature_sets
-                else f"{cap.param}: {', '.join(cap.labels)} (more capacity to the right)")
-    reg = c.regularization
-    reg_text = (f"{reg.param}: {', '.join(reg.labels)} (more regularisation to the right)"
-                if reg.param else "none")
-    path = (fast_path_kind(spec.plan, c.metric) if c.fast_path else None) or "plain fits"
-    sizes = ", ".join(map(str, spec.sizes))
     lines = [
         ("config", str(c.source)),
         ("data", f"{c.data_path.name}: {d.n_rows} rows, {len(d.numeric)} numeric + "
                  f"{len(d.categorical)} categorical features, target {c.target!r} ({c.task})"),
-        ("model", f"{spec.plan.family or c.estimator} ({path})"),
-        ("capacity", cap_text),
-        ("regularization", reg_text),
-        ("train sizes", sizes),
+    ]
+    for model in spec.models:
+        lines += _model_lines(model, named=len(spec.models) > 1)
+    lines += [
+        ("train sizes", ", ".join(map(str, spec.sizes))),
         ("resampling", f"{plural(c.folds, 'fold')} x {plural(c.repeats, 'repeat')}, seed {c.seed}"),
         ("metric", c.metric + (f", target {c.target_error:g}" if c.target_error else "")),
         ("grid", f"{spec.n_cells} cells ({spec.n_settings} settings x {len(spec.sizes)} sizes), "
@@ -85,6 +78,21 @@ def _describe(spec, run_dir: Path) -> str:
     ]
     width = max(len(k) for k, _ in lines)
     return "\n".join(f"{k.ljust(width)}  {v}" for k, v in lines)
+
+
+def _model_lines(model, named: bool) -> list[tuple[str, str]]:
+    from gridplan.runner import fast_path_kind
+    c = model.config
+    cap, reg = c.capacity, c.regularization
+    cap_text = (f"feature sets: {', '.join(cap.labels)}" if cap.feature_sets
+                else f"{cap.param}: {', '.join(cap.labels)} (more capacity to the right)")
+    reg_text = (f"{reg.param}: {', '.join(reg.labels)} (more regularisation to the right)"
+                if reg.param else "none")
+    path = (fast_path_kind(model.plan, c.metric) if c.fast_path else None) or "plain fits"
+    kind = f"{model.plan.family or c.estimator} ({path})"
+    return [("model", f"{model.model_label}: {kind}" if named else kind),
+            ("  capacity" if named else "capacity", cap_text),
+            ("  regularization" if named else "regularization", reg_text)]
 
 
 @app.command()
@@ -118,7 +126,7 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
     if not quiet:
         typer.echo(_describe(spec, run_dir))
     seconds, line = _estimate_line(spec, api.effective_jobs(spec.config, jobs),
-                                   _finished_keys(run_dir))
+                                   _finished_keys(run_dir, len(spec.models)))
     if not quiet:
         typer.echo(line)
     if seconds > CONFIRM_ABOVE_SECONDS and not yes and _on_terminal():
@@ -127,7 +135,7 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
     with _progress_bar(spec, quiet) as progress:
         api.run(spec.config, out=run_dir, jobs=jobs, scheduler=scheduler,
                 allow_any_estimator=allow_any_estimator, progress=progress, spec=spec)
-    cells = api.open_run(run_dir).cells()
+    cells = api.open_run(run_dir).all_cells()
     failed = int((cells["status"] != "ok").sum())
     typer.echo(f"done: {len(cells)} fits stored in {run_dir}"
                + (f"; {failed} failed (see `gridplan export`)" if failed else ""))
@@ -149,23 +157,29 @@ def _duration(seconds: float) -> str:
     return f"{seconds / 3600:.1f} h"
 
 
-def _estimate_line(spec, jobs: int, done: set | None = None) -> tuple[float, str]:
-    """Time one unfinished task at the largest size and scale it to the rest."""
+def _estimate_line(spec, jobs: int, done: list[set] | None = None) -> tuple[float, str]:
+    """Time one unfinished task at the largest size per model and scale it to the rest."""
     from gridplan.runner import estimate_seconds
-    seconds, probe = estimate_seconds(spec, jobs, done)
+    seconds, probe = 0.0, 0.0
+    for index, model in enumerate(spec.models):
+        more, taken = estimate_seconds(model, jobs, done[index] if done else None)
+        seconds, probe = seconds + more, max(probe, taken)
     if probe == 0.0:
         return 0.0, f"{'estimate'.ljust(14)}  nothing left to run: every fit is stored"
     return seconds, (f"{'estimate'.ljust(14)}  about {_duration(seconds)} with {jobs} worker"
                      f"{'s' if jobs > 1 else ''} (one task at the largest size took {probe:.2f} s)")
 
 
-def _finished_keys(run_dir: Path) -> set:
-    """Fits an earlier run in this folder already stored (none for a new folder)."""
+def _finished_keys(run_dir: Path, models: int = 1) -> list[set]:
+    """Per model table, the fits an earlier run in this folder already stored."""
     from gridplan.store import STORE_NAME, Store
     if not (Path(run_dir) / STORE_NAME).is_file():
-        return set()
-    with Store.open_existing(run_dir) as store:
-        return store.finished_keys()
+        return [set() for _ in range(models)]
+    out = []
+    for index in range(models):
+        with Store.open_existing(run_dir, model=index) as store:
+            out.append(store.finished_keys())
+    return out
 
 
 class _progress_bar:

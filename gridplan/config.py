@@ -25,14 +25,15 @@ TASKS = ("regression", "classification")
 SCHEMA: dict[str, dict[str, str]] = {
     "data": {"path": "str", "target": "str", "task": "str", "features": "list",
              "missing": "str"},
-    "model": {"family": "str", "estimator": "str", "params": "table",
+    "model": {"name": "str", "family": "str", "estimator": "str", "params": "table",
               "capacity": "table", "regularization": "table"},
     "sizes": {"values": "list", "count": "int", "smallest": "int"},
     "resampling": {"folds": "int", "repeats": "int", "seed": "int"},
     "goal": {"metric": "str", "target": "number", "confidence": "number"},
     "costs": {"per_sample": "number", "capacity_step": "number",
               "regularization_step": "number", "max_samples": "int",
-              "feature_groups": "table", "per_fit_second": "number"},
+              "feature_groups": "table", "per_fit_second": "number",
+              "switch_model": "number"},
     "diagnosis": {"floor_margin": "number", "min_share": "number", "alpha": "number",
                   "flat_fraction": "number"},
     "run": {"jobs": "int", "scheduler": "str", "fit_time_limit": "number",
@@ -61,6 +62,11 @@ MAX_SETTINGS = 20_000
 MAX_SIZES = 100
 MAX_JOBS = 1_024
 MAX_FIT_SECONDS = 1e6
+#: Model tables one run may compare ([[model]]); each is a grid of its own.
+MAX_MODELS = 8
+#: Model names: short, and safe in file names, options and "NAME:CAPACITY,REG".
+MODEL_NAME_CHARS = frozenset("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789-_.")
+MAX_MODEL_NAME = 40
 SEED_RANGE = (0, 2 ** 32 - 1)
 
 DEFAULT_CAPACITY_PARAM = {"poly-ridge": "degree", "tree": "max_depth"}
@@ -102,6 +108,19 @@ class Costs:
     max_samples: int | None = None
     feature_groups: dict[str, float] = field(default_factory=dict)
     per_fit_second: float = 0.0
+    switch_model: float = 100.0
+
+
+@dataclass(frozen=True)
+class ModelConfig:
+    """One model table: a name and its own family or estimator, parameters and axes."""
+
+    name: str
+    family: str | None
+    estimator: str | None
+    params: dict[str, Any]
+    capacity: Axis
+    regularization: Axis
 
 
 @dataclass(frozen=True)
@@ -137,11 +156,26 @@ class Config:
     fast_path: bool = True
     thresholds: dict[str, float] = field(default_factory=dict)
     max_fits: int = DEFAULT_MAX_FITS
+    #: Every model table, in config order; the fields family ... regularization
+    #: above are the first one's (a single [model] table has one entry).
+    models: tuple[ModelConfig, ...] = ()
 
     @property
     def model_name(self) -> str:
         """The family name or the estimator's import path."""
         return self.family or self.estimator or "?"
+
+    @property
+    def model_names(self) -> tuple[str, ...]:
+        return tuple(m.name for m in self.models)
+
+    def for_model(self, index: int) -> "Config":
+        """This config with one model table only: the one at `index`."""
+        import dataclasses
+        m = self.models[index]
+        return dataclasses.replace(self, family=m.family, estimator=m.estimator,
+                                   params=dict(m.params), capacity=m.capacity,
+                                   regularization=m.regularization, models=(m,))
 
 
 def value_label(value: Any) -> str:
@@ -181,13 +215,25 @@ def _check_keys(path: Path, raw: dict[str, Any]) -> None:
                 f"{path.name}: unknown section [{section}]"
                 f"{_suggest(section, list(SCHEMA))}; known sections are "
                 f"{', '.join(SCHEMA)}.")
-        if not isinstance(body, dict):
+        if section == "model" and isinstance(body, list):
+            if not body or not all(isinstance(b, dict) for b in body):
+                raise GridplanError(f"{path.name}: model must be one [model] table or several "
+                                    f"[[model]] tables.")
+            if len(body) > MAX_MODELS:
+                raise GridplanError(f"{path.name}: {len(body)} [[model]] tables, more than the "
+                                    f"{MAX_MODELS} one run may compare.")
+            bodies = body
+        elif not isinstance(body, dict):
             raise GridplanError(f"{path.name}: {section} must be a table like [{section}].")
-        for key in body:
-            if key not in SCHEMA[section]:
-                raise GridplanError(
-                    f"{_where(path, section)} has unknown key {key!r}"
-                    f"{_suggest(key, list(SCHEMA[section]))}.")
+        else:
+            bodies = [body]
+        for number, one in enumerate(bodies, start=1):
+            label = section if len(bodies) == 1 else f"{section} {number}"
+            for key in one:
+                if key not in SCHEMA[section]:
+                    raise GridplanError(
+                        f"{_where(path, label)} has unknown key {key!r}"
+                        f"{_suggest(key, list(SCHEMA[section]))}.")
     for section in REQUIRED_SECTIONS:
         if section not in raw:
             raise GridplanError(f"{path.name}: the [{section}] section is missing.")
@@ -323,11 +369,17 @@ def _resolve_aliases(path: Path, raw: dict[str, Any]) -> dict[str, Any]:
     out = dict(raw)
     for (section, alias), key in KEY_ALIASES.items():
         body = out.get(section)
-        if isinstance(body, dict) and alias in body:
-            if key in body:
-                raise GridplanError(f"{path.name}: [{section}] has both {key} and {alias}; "
-                                    f"keep one.")
-            out[section] = {key if k == alias else k: v for k, v in body.items()}
+        bodies = body if isinstance(body, list) else [body]
+        renamed = []
+        for one in bodies:
+            if isinstance(one, dict) and alias in one:
+                if key in one:
+                    raise GridplanError(f"{path.name}: [{section}] has both {key} and {alias}; "
+                                        f"keep one.")
+                one = {key if k == alias else k: v for k, v in one.items()}
+            renamed.append(one)
+        if body is not None:
+            out[section] = renamed if isinstance(body, list) else renamed[0]
     return out
 
 
@@ -336,7 +388,6 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     raw = _resolve_aliases(path, raw)
     _check_keys(path, raw)
     data = _Reader(path, "data", raw["data"])
-    model = _Reader(path, "model", raw["model"])
     sizes = _Reader(path, "sizes", raw.get("sizes", {}))
     resampling = _Reader(path, "resampling", raw.get("resampling", {}))
     goal = _Reader(path, "goal", raw.get("goal", {}))
@@ -375,27 +426,10 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     if missing not in ("refuse", "impute"):
         raise GridplanError(f"{data.where('missing')} must be \"refuse\" or \"impute\", got {missing!r}.")
 
-    family = model.get("family", "str")
-    estimator = model.get("estimator", "str")
-    if (family is None) == (estimator is None):
-        raise GridplanError(f"{_where(path, 'model')} needs exactly one of family = "
-                            f"\"poly-ridge\"|\"tree\" or estimator = \"sklearn....\".")
-    if family is not None and family not in FAMILIES:
-        raise GridplanError(f"{model.where('family')} must be one of {', '.join(FAMILIES)}, "
-                            f"got {family!r}{_suggest(family, list(FAMILIES))}.")
-    params = model.get("params", "table", default={})
-    capacity = _read_axis(model, "capacity", DEFAULT_CAPACITY_PARAM.get(family or ""),
-                          required=True)
-    regularization = _read_axis(model, "regularization",
-                                DEFAULT_REGULARIZATION_PARAM.get(family or ""), required=False)
-    for axis_name, axis in (("capacity", capacity), ("regularization", regularization)):
-        if axis.param and axis.param in params:
-            raise GridplanError(f"{model.where('params')} sets {axis.param!r}, which the "
-                                f"{axis_name} axis already varies.")
-    if family is not None and capacity.param is not None and capacity.feature_sets is None:
-        _check_family_axis(model.where("capacity"), family, capacity)
-    if family is not None and regularization.param is not None:
-        _check_family_axis(model.where("regularization"), family, regularization)
+    models = _read_models(path, raw["model"])
+    first = models[0]
+    family, estimator, params = first.family, first.estimator, first.params
+    capacity, regularization = first.capacity, first.regularization
 
     size_values = sizes.get("values", "list")
     if size_values is not None:
@@ -439,7 +473,8 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         raise GridplanError(f"{goal.where('confidence')} must lie in [0.5, 1), got {confidence:g}.")
 
     cost_values = {}
-    for key in ("per_sample", "capacity_step", "regularization_step", "per_fit_second"):
+    for key in ("per_sample", "capacity_step", "regularization_step", "per_fit_second",
+                "switch_model"):
         value = costs.get(key, "number")
         if value is not None:
             if value < 0:
@@ -466,8 +501,7 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     max_fits = run.get("max_fits", "int", default=DEFAULT_MAX_FITS)
     if max_fits < 1:
         raise GridplanError(f"{run.where('max_fits')} must be positive, got {max_fits:,}.")
-    _check_grid_size(path, capacity, regularization, size_values, size_count, folds, repeats,
-                     max_fits)
+    _check_grid_size(path, models, size_values, size_count, folds, repeats, max_fits)
 
     return Config(
         source=path, text=text, data_path=resolved_data, target=target, task=task,
@@ -477,7 +511,57 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         folds=folds, repeats=repeats, seed=seed, metric=metric,
         target_error=target_error, confidence=confidence, costs=cost_obj, jobs=jobs,
         scheduler=scheduler, fit_time_limit=limit, name=name, max_fits=max_fits,
-        fast_path=run.get("fast_path", "bool", default=True), thresholds=thresholds)
+        fast_path=run.get("fast_path", "bool", default=True), thresholds=thresholds,
+        models=models)
+
+
+def _read_models(path: Path, raw: Any) -> tuple[ModelConfig, ...]:
+    """One [model] table or several [[model]] tables, each checked; names unique."""
+    bodies = raw if isinstance(raw, list) else [raw]
+    several = len(bodies) > 1
+    models = []
+    for number, body in enumerate(bodies, start=1):
+        section = "model" if not several else f"model {number}"
+        models.append(_read_model(_Reader(path, section, body), several))
+    names = [m.name for m in models]
+    for name in names:
+        if names.count(name) > 1:
+            raise GridplanError(f"{path.name}: two [[model]] tables are named {name!r}; give "
+                                f"each its own name.")
+    return tuple(models)
+
+
+def _read_model(model: "_Reader", several: bool) -> ModelConfig:
+    """One model table: family or estimator, params, axes and name (required when several)."""
+    family = model.get("family", "str")
+    estimator = model.get("estimator", "str")
+    if (family is None) == (estimator is None):
+        raise GridplanError(f"{_where(model.path, model.section)} needs exactly one of family = "
+                            f"\"poly-ridge\"|\"tree\" or estimator = \"sklearn....\".")
+    if family is not None and family not in FAMILIES:
+        raise GridplanError(f"{model.where('family')} must be one of {', '.join(FAMILIES)}, "
+                            f"got {family!r}{_suggest(family, list(FAMILIES))}.")
+    params = model.get("params", "table", default={})
+    capacity = _read_axis(model, "capacity", DEFAULT_CAPACITY_PARAM.get(family or ""),
+                          required=True)
+    regularization = _read_axis(model, "regularization",
+                                DEFAULT_REGULARIZATION_PARAM.get(family or ""), required=False)
+    for axis_name, axis in (("capacity", capacity), ("regularization", regularization)):
+        if axis.param and axis.param in params:
+            raise GridplanError(f"{model.where('params')} sets {axis.param!r}, which the "
+                                f"{axis_name} axis already varies.")
+    if family is not None and capacity.param is not None and capacity.feature_sets is None:
+        _check_family_axis(model.where("capacity"), family, capacity)
+    if family is not None and regularization.param is not None:
+        _check_family_axis(model.where("regularization"), family, regularization)
+    name = model.get("name", "str", required=several)
+    if name is None:
+        name = family or estimator.rsplit(".", 1)[-1]
+    elif not name or len(name) > MAX_MODEL_NAME or not set(name) <= MODEL_NAME_CHARS:
+        raise GridplanError(f"{model.where('name')} must be 1 to {MAX_MODEL_NAME} letters, digits, "
+                            f"'-', '_' or '.', got {name!r}.")
+    return ModelConfig(name=name, family=family, estimator=estimator, params=dict(params),
+                       capacity=capacity, regularization=regularization)
 
 
 def check_jobs(jobs: int, where: str) -> int:
@@ -499,16 +583,19 @@ def check_run_name(name: str, where: str) -> str:
     return name
 
 
-def _check_grid_size(path: Path, capacity: Axis, regularization: Axis,
+def _check_grid_size(path: Path, models: tuple[ModelConfig, ...],
                      size_values: tuple[int, ...] | None, size_count: int, folds: int,
                      repeats: int, max_fits: int) -> None:
     """Refuse, before any work, a grid with more settings or fits than a run can hold."""
-    settings = len(capacity) * len(regularization)
-    if settings > MAX_SETTINGS:
-        raise GridplanError(f"{path.name}: [model] the grid has {settings:,} settings "
-                            f"({len(capacity):,} capacity x {len(regularization):,} "
-                            f"regularization values), more than the {MAX_SETTINGS:,} whose curves "
-                            f"gridplan can estimate; use fewer values on an axis.")
+    for m in models:
+        count = len(m.capacity) * len(m.regularization)
+        if count > MAX_SETTINGS:
+            where = "[model]" if len(models) == 1 else f"[[model]] {m.name!r}"
+            raise GridplanError(f"{path.name}: {where} the grid has {count:,} settings "
+                                f"({len(m.capacity):,} capacity x {len(m.regularization):,} "
+                                f"regularization values), more than the {MAX_SETTINGS:,} whose "
+                                f"curves gridplan can estimate; use fewer values on an axis.")
+    settings = sum(len(m.capacity) * len(m.regularization) for m in models)
     n_sizes = len(size_values) if size_values is not None else size_count
     fits = settings * n_sizes * folds * repeats
     if fits > max_fits:

@@ -24,9 +24,9 @@ from gridplan.store import CURVES_NAME
 
 #: Bumped whenever fitting changes what it returns, so older files are ignored.
 FORMAT_VERSION = 3
-#: States of the cells kept at once (a backtest's subset beside the full run, say).
-KEEP_STATES = 4
-KEY_COLUMNS = ("capacity_index", "regularization_index", "train_size", "repeat", "fold",
+#: States of the cells kept at once (each model of a run, a backtest's subset beside it).
+KEEP_STATES = 12
+KEY_COLUMNS = ("model_index", "capacity_index", "regularization_index", "train_size", "repeat", "fold",
                "train_error", "validation_error", "status")
 
 
@@ -41,7 +41,9 @@ def _fitting_code() -> str:
 
 def cells_key(cells: pd.DataFrame, **options) -> str:
     """A hash of the cells a fit depends on, the fitting options and the fitting code."""
-    frame = cells.loc[:, list(KEY_COLUMNS)].sort_values(list(KEY_COLUMNS[:5]), kind="stable")
+    columns = [c for c in KEY_COLUMNS if c in cells.columns]
+    frame = cells.loc[:, columns].sort_values([c for c in columns if c in KEY_COLUMNS[:6]],
+                                              kind="stable")
     digest = hashlib.sha256()
     digest.update(json.dumps({"version": FORMAT_VERSION, "code": _fitting_code(), **options},
                              sort_keys=True).encode())

@@ -25,6 +25,11 @@ class GridSpec:
     sizes: tuple[int, ...]
 
     @property
+    def model_label(self) -> str:
+        """The model table's name (the family or estimator when unnamed)."""
+        return self.config.models[0].name if self.config.models else self.config.model_name
+
+    @property
     def n_settings(self) -> int:
         return len(self.plan.capacity_values) * len(self.plan.regularization_values)
 
@@ -67,8 +72,83 @@ def _jsonable(value: Any) -> Any:
     return json.loads(json.dumps(value, default=str))
 
 
+@dataclass(frozen=True)
+class RunSpec:
+    """Every model table of a config resolved against the same data, folds and sizes.
+
+    `dataset`, `folds`, `sizes` and `plan` are the first model's
+    (the folds and sizes are the same for all); counts add up over models.
+    """
+
+    config: Config                 # the whole config (every model table)
+    models: tuple[GridSpec, ...]
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return tuple(m.model_label for m in self.models)
+
+    @property
+    def dataset(self) -> Dataset:
+        return self.models[0].dataset
+
+    @property
+    def plan(self) -> ModelPlan:
+        return self.models[0].plan
+
+    @property
+    def folds(self) -> tuple[Fold, ...]:
+        return self.models[0].folds
+
+    @property
+    def sizes(self) -> tuple[int, ...]:
+        return self.models[0].sizes
+
+    @property
+    def n_settings(self) -> int:
+        return sum(m.n_settings for m in self.models)
+
+    @property
+    def n_cells(self) -> int:
+        return sum(m.n_cells for m in self.models)
+
+    @property
+    def n_fits(self) -> int:
+        return sum(m.n_fits for m in self.models)
+
+    def measuring_identity(self) -> dict[str, Any]:
+        """One model: as GridSpec's (so older run folders still resume); several: a list of models."""
+        identity = self.models[0].measuring_identity()
+        if len(self.models) > 1:
+            identity["model"] = [dict(m.measuring_identity()["model"], label=m.model_label)
+                                 for m in self.models]
+        return identity
+
+    def fingerprint(self) -> str:
+        blob = json.dumps(self.measuring_identity(), sort_keys=True).encode()
+        return hashlib.sha256(blob).hexdigest()[:16]
+
+
+def resolve_run(config: Config, *, allow_any_import: bool = False) -> RunSpec:
+    """Resolve every model table; all must see the same rows (same folds and sizes)."""
+    specs = tuple(resolve(config.for_model(i), allow_any_import=allow_any_import)
+                  for i in range(max(len(config.models), 1)))
+    first = specs[0]
+    for other in specs[1:]:
+        if other.dataset.n_rows != first.dataset.n_rows or other.sizes != first.sizes:
+            raise GridplanError(f"{config.source.name}: [[model]] {other.model_label!r} sees "
+                                f"{other.dataset.n_rows:,} rows but {first.model_label!r} sees "
+                                f"{first.dataset.n_rows:,}; models of one run must be measured "
+                                f"on the same rows.")
+    return RunSpec(config, specs)
+
+
 def resolve(config: Config, *, allow_any_import: bool = False) -> GridSpec:
-    """Load the data, check the model, build folds and the training-size ladder."""
+    """Load the data, check the model, build folds and the training-size ladder.
+
+    With several model tables, the first one's grid (see `resolve_run` for all).
+    """
+    if len(config.models) > 1:
+        config = config.for_model(0)
     dataset = load_dataset(config)
     plan = plan_model(config, dataset, allow_any_import=allow_any_import)
     classification = config.task == "classification"
