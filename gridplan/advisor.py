@@ -247,16 +247,73 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
            confidence: float | None = None, per_sample: float | None = None,
            capacity_step: float | None = None, regularization_step: float | None = None,
            max_samples: int | None = None, less_capacity_step: float | None = None,
-           per_fit_second: float | None = None, thresholds: Thresholds | None = None,
+           per_fit_second: float | None = None, switch_model: float | None = None,
+           thresholds: Thresholds | None = None, model: str | None = None,
            n_boot: int = DEFAULT_BOOT, seed: int = 0, curves: GridCurves | None = None) -> dict:
     """Diagnose a run at the operating point and plan the cheapest way to the target.
 
-    `at` is "CAPACITY,REG" (labels); default: the setting with the lowest mean
-    validation error at the largest measured size.  Costs and max_samples come
-    from the run's config unless overridden here.  `curves` may pass curves
-    already fitted on this run's cells (otherwise they are fitted with n_boot, seed).
+    `at` is "CAPACITY,REG" (labels) of model `model` (default: the first
+    model, or with several models the one whose best setting measures lowest);
+    default setting: the one with the lowest mean validation error at the
+    largest measured size. Costs and max_samples come from the run's config
+    unless overridden here. With several model tables the noise floor draws
+    on all of them and a plan may switch model (cost `switch_model`).
+    `curves` may pass curves already fitted on this (single-model) run's cells.
     """
-    run = open_run(run_dir)
+    run = open_run(run_dir, model=model)
+    names = run.model_names
+    options = dict(target=target, confidence=confidence, per_sample=per_sample,
+                   capacity_step=capacity_step, regularization_step=regularization_step,
+                   max_samples=max_samples, less_capacity_step=less_capacity_step,
+                   per_fit_second=per_fit_second, thresholds=thresholds, n_boot=n_boot, seed=seed)
+    if len(names) == 1:
+        return _with_models([_advise_model(run, at=at, curves=curves, **options)], 0, None)
+    from gridplan.curvestore import cached_curves
+    from gridplan.curves import floor_across_models
+    runs = [run.for_model(i) for i in range(len(names))]
+    grids = [cached_curves(r.run_dir, r.cells(), n_boot=n_boot, seed=seed) for r in runs]
+    confidence_value = _resolve_confidence(confidence, run.config)
+    pooled = floor_across_models(grids, names, confidence_value)
+    floor = None if pooled is None else NoiseFloor(
+        pooled.value, pooled.low, pooled.high, pooled.capacity_index,
+        pooled.regularization_index, pooled.informative, pooled.evidence)
+    floor_where = None if pooled is None else (pooled.model_index, _setting_label(
+        runs[pooled.model_index], pooled.capacity_index, pooled.regularization_index))
+    each = [_advise_model(r, at=at if i == run.model else None, curves=grids[i], floor=floor,
+                          floor_where=floor_where, **options) for i, r in enumerate(runs)]
+    if model is not None:
+        here = run.model
+    else:
+        here = min(range(len(each)), key=lambda i: (each[i]["diagnosis"]["validation_error"], i))
+        if at is not None:
+            each[here] = _advise_model(runs[here], at=at, curves=grids[here], floor=floor,
+                                       floor_where=floor_where, **options)
+    costs = _cost_model(run.config, {"switch_model": switch_model})
+    return _with_models(each, here, costs.switch_model)
+
+
+def _setting_label(run, ci: int, ri: int) -> str:
+    """'CAPACITY,REG' of a setting of `run`, by its axis labels."""
+    capacity = [label for label, _ in run.axes.get("capacity", [])]
+    regularization = [label for label, _ in run.axes.get("regularization", [])]
+    return f"{capacity[ci]},{regularization[ri]}"
+
+
+_UNSET = object()
+
+
+def _advise_model(run, *, target: float | None, at: str | None, confidence: float | None,
+                  per_sample: float | None, capacity_step: float | None,
+                  regularization_step: float | None, max_samples: int | None,
+                  less_capacity_step: float | None, per_fit_second: float | None,
+                  thresholds: Thresholds | None, n_boot: int, seed: int,
+                  curves: GridCurves | None, floor=_UNSET, floor_where=None) -> dict:
+    """One model table's advice: its operating point, diagnosis, plan and ranked moves.
+
+    `floor` overrides the noise floor (the one pooled over every model of the
+    run, None when unknown); `floor_where` is then (model index, setting label).
+    """
+    run_dir = run.run_dir
     config = run.config
     if thresholds is None:
         thresholds = Thresholds(**(config.thresholds if config is not None else {}))
@@ -283,7 +340,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     test_sizes = run.meta.get("test_sizes") or []
     n_test = float(np.mean(test_sizes)) if test_sizes else float(
         run.meta.get("n_rows", 0)) / max(int(run.meta.get("folds", 5)), 1)
-    floor = estimate_noise_floor(curves, confidence)
+    floor = estimate_noise_floor(curves, confidence) if floor is _UNSET else floor
     plateau = best_plateau(curves, confidence)
     size = int(ok["train_size"].max())
 
@@ -299,7 +356,8 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     start = State(ci, ri, size)
     setting_rows = cells[(cells.capacity_index == ci) & (cells.regularization_index == ri)]
     # a floor found at the grid's capacity edge may be bias: the noise-floor verdict is off then
-    floor_at_edge = floor is not None and _floor_at_capacity_edge(
+    floor_here = floor is not None and (floor_where is None or floor_where[0] == run.model)
+    floor_at_edge = floor_here and _floor_at_capacity_edge(
         curves, floor, len(capacity_labels), confidence)
     verdict_floor = floor.value if floor is not None and not floor_at_edge else None
     here = diagnose_setting(setting_rows, curves.get((ci, ri)), target=target,
@@ -334,7 +392,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
 
     def describe(state: State) -> dict:
         f = states.forecasts[state]
-        return {"capacity": capacity_labels[state.capacity_index],
+        return {"model": run.model_name, "capacity": capacity_labels[state.capacity_index],
                 "regularization": regularization_labels[state.regularization_index],
                 "size": state.size, "predicted_error": f.point,
                 "interval": [f.low, f.high], "error_at_confidence": f.predicted,
@@ -375,7 +433,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     result = {
         "run_dir": str(run_dir), "metric": run.meta.get("metric"), "target": target,
         "confidence": confidence,
-        "operating_point": {"capacity": capacity_labels[ci],
+        "operating_point": {"model": run.model_name, "capacity": capacity_labels[ci],
                             "regularization": regularization_labels[ri], "size": size,
                             "capacity_index": ci, "regularization_index": ri,
                             "chosen": "given" if at is not None else "best measured"},
@@ -384,13 +442,18 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         "thresholds": vars(thresholds).copy(),
         "noise_floor": floor.value if floor else None,
         "noise_floor_band": [floor.low, floor.high] if floor else None,
-        "noise_floor_setting": labels(floor.capacity_index, floor.regularization_index) if floor else None,
+        "noise_floor_setting": (None if not floor else labels(floor.capacity_index,
+                                floor.regularization_index) if floor_where is None
+                                else floor_where[1]),
+        "noise_floor_model": (None if not floor else run.model_name if floor_where is None
+                              else run.model_names[floor_where[0]]),
         "noise_floor_at_capacity_edge": floor_at_edge,
         "noise_floor_evidence": floor.evidence if floor else None,
         "plateau": plateau.value if plateau else None,
         "plateau_band": [plateau.low, plateau.high] if plateau else None,
         "plateau_setting": (labels(plateau.capacity_index, plateau.regularization_index)
                             if plateau else None),
+        "plateau_model": run.model_name if plateau else None,
         "calibration": curves.calibration.as_dict() if curves.calibration is not None else None,
         "reachable": reachable, "binding_limit": limit, "binding_detail": limit_detail,
         "label_next_rows": next_rows,
@@ -400,47 +463,146 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
                   "less_capacity_step": costs.less_capacity(),
                   "feature_groups": dict(costs.feature_groups),
                   "per_fit_second": costs.per_fit_second, "max_samples": costs.max_samples,
+                  "switch_model": costs.switch_model,
                   "size_ladder": ladder},
         "settings": [d.as_dict() for d in settings.values()],
         "skipped": {"failed_rows": int(len(failed)), "settings": skipped,
                     "unfitted": list(getattr(curves, "unfitted", []))},
     }
+    result["operating_point"]["interval"] = describe(start)["interval"]
     result = _plain(result)
-    result["headline"] = headline(result, run.meta.get("capacity_param") or "capacity",
-                                  run.meta.get("regularization_param") or "regularization")
+    result["_model_meta"] = {k: run.meta.get(k) for k in
+                             ("family", "model", "capacity_param", "regularization_param")}
     return result
 
 
-def headline(advice: dict, capacity_name: str, regularization_name: str) -> str:
+def _model_entry(advice: dict, meta: dict) -> dict:
+    """What one model of a run offers: its best measured setting, plateau and own plan."""
+    op, d = advice["operating_point"], advice["diagnosis"]
+    return {"name": op["model"], "family": meta.get("family") or meta.get("model"),
+            "capacity_param": meta.get("capacity_param") or "capacity",
+            "regularization_param": meta.get("regularization_param") or "regularization",
+            "best_setting": f"{op['capacity']},{op['regularization']}",
+            "validation_error": d["validation_error"],
+            "plateau": advice["plateau"], "plateau_band": advice["plateau_band"],
+            "plateau_setting": advice["plateau_setting"],
+            "reachable": advice["reachable"], "plan_cost": advice["plan_cost"],
+            "binding_limit": advice["binding_limit"]}
+
+
+def _with_models(each: list[dict], here: int, switch_cost: float | None) -> dict:
+    """The advice at model `here`, with switching to another model as a move of its own.
+
+    A switch lands on the other model's best measured setting at the same
+    size, for `switch_cost`, and goes on with that model's own cheapest plan.
+    The plan kept is the cheapest over staying and every switch (staying wins
+    ties). One model: that model's advice with its entry under "models".
+    """
+    metas = [one.pop("_model_meta") for one in each]
+    advice = dict(each[here])
+    advice["models"] = [_model_entry(one, meta) for one, meta in zip(each, metas)]
+    if len(each) > 1:
+        plateaus = [(one["plateau_band"][1], i) for i, one in enumerate(each)
+                    if one["plateau_band"] is not None]
+        if plateaus:
+            best = each[min(plateaus)[1]]
+            advice.update(plateau=best["plateau"], plateau_band=best["plateau_band"],
+                          plateau_setting=best["plateau_setting"],
+                          plateau_model=best["plateau_model"])
+        switches = []
+        for i, other in enumerate(each):
+            if i == here:
+                continue
+            dest = dict(other["operating_point"])
+            dest.update(predicted_error=other["diagnosis"]["validation_error"],
+                        interval=_measured_interval(other), measured=True)
+            total = switch_cost + other["plan_cost"] if other["reachable"] else None
+            then = [f"{s['action']} to {s['to']['capacity']},{s['to']['regularization']}"
+                    + (f" at {s['to']['size']:,}" if s["action"] == "more-data" else "")
+                    for s in other["plan"]]
+            switches.append((total, i, other, dest, then))
+        for total, i, other, dest, then in switches:
+            advice["actions"].append({
+                "action": "switch-model", "to": dest, "step_cost": switch_cost,
+                "predicted_error": dest["predicted_error"], "interval": dest["interval"],
+                "plan_cost": total, "reachable": total is not None,
+                "reason": ("meets the target" if other["reachable"] and not other["plan"] else
+                           "meets the target after further steps" if other["reachable"] else
+                           f"no plan of model {dest['model']} reaches the target "
+                           f"({other['binding_limit']})"),
+                "then": then})
+        advice["actions"].sort(key=lambda a: (0, a["plan_cost"]) if a["reachable"] else
+                               (1, 0.0) if a["to"] is not None else (2, 0.0))
+        best = min((s for s in switches if s[0] is not None), default=None,
+                   key=lambda s: (s[0], s[1]))
+        if best is not None and (not advice["reachable"] or best[0] < advice["plan_cost"]):
+            total, i, other, dest, _ = best
+            start = dict(advice["operating_point"])
+            start.update(predicted_error=advice["diagnosis"]["validation_error"],
+                         interval=_measured_interval(advice), measured=True)
+            plan = [{"action": "switch-model", "cost": switch_cost,
+                     "cumulative_cost": switch_cost, "predicted_error": dest["predicted_error"],
+                     "worse_on_the_way": bool(dest["predicted_error"] > start["predicted_error"]),
+                     "from": start, "to": dest}]
+            for step in other["plan"]:
+                plan.append(dict(step, cumulative_cost=step["cumulative_cost"] + switch_cost))
+            advice.update(plan=plan, plan_cost=total, reachable=True, binding_limit=None,
+                          binding_detail=None, label_next_rows=None)
+    advice["headline"] = headline(advice)
+    return advice
+
+
+def _measured_interval(advice: dict) -> list:
+    """The operating point's measured interval (the corrected-t test of its folds)."""
+    return list(advice["operating_point"]["interval"])
+
+
+def headline(advice: dict) -> str:
     """One plain sentence first: what to do, what it costs, what error to expect."""
     op, target = advice["operating_point"], advice["target"]
+    models = {m["name"]: m for m in advice.get("models") or []}
+    several = len(models) > 1
+
+    def params(model: str | None) -> tuple[str, str]:
+        entry = models.get(model) or {}
+        return (entry.get("capacity_param") or "capacity",
+                entry.get("regularization_param") or "regularization")
+
     if not advice["reachable"]:
         limit = advice["binding_limit"]
         below = advice["noise_floor_band"] is not None and target < advice["noise_floor_band"][0]
+        every = "every setting of every model" if several else "every setting of this model"
         reason = {"noise floor": ("it lies below the data's noise floor; only new information "
                                   "(better features, cleaner labels) can help" if below else
                                   "it lies inside the band of the data's noise floor; more rows "
                                   "narrow that band"),
                   "max_samples": "it needs more rows than max_samples allows",
                   "forecast too uncertain": "the forecasts are too uncertain to plan on yet",
-                  "model plateau": "every setting of this model levels off above it",
+                  "model plateau": f"{every} levels off above it",
                   "capacity range": "no setting of the grid gets there"}.get(limit, limit)
         text = f"No plan reaches the target {target:g} at {advice['confidence']:.0%} confidence: {reason}"
         if advice.get("label_next_rows"):
             text += (f"; label about {_about(advice['label_next_rows'])} more rows and run again "
                      f"to narrow the forecast")
         return text + "."
+    capacity_name, regularization_name = params(op.get("model"))
+    in_model = f"model {op.get('model')} with " if several else ""
     if not advice["plan"]:
         d = advice["diagnosis"]
-        return (f"Nothing to do: {capacity_name} {op['capacity']}, {regularization_name} "
+        return (f"Nothing to do: {in_model}{capacity_name} {op['capacity']}, {regularization_name} "
                 f"{op['regularization']} at {op['size']:,} rows already meets the target "
                 f"{target:g} (measured {_g(d['validation_error'])}).")
     end = advice["plan"][-1]["to"]
     moves = []
-    if end["capacity"] != op["capacity"]:
-        moves.append(f"{capacity_name} {end['capacity']}")
-    if end["regularization"] != op["regularization"]:
-        moves.append(f"{regularization_name} {end['regularization']}")
+    if end.get("model") != op.get("model"):
+        capacity_name, regularization_name = params(end.get("model"))
+        moves.append(f"model {end['model']} with {capacity_name} {end['capacity']}, "
+                     f"{regularization_name} {end['regularization']}")
+    else:
+        if end["capacity"] != op["capacity"]:
+            moves.append(f"{capacity_name} {end['capacity']}")
+        if end["regularization"] != op["regularization"]:
+            moves.append(f"{regularization_name} {end['regularization']}")
     words = f"Switch to {' and '.join(moves)}" if moves else ""
     if end["size"] > op["size"]:
         rows = f"label about {_about(end['size'] - op['size'])} more rows"
@@ -511,13 +673,34 @@ def mean_meets_but_interval_not(confidence: float) -> str:
 def render_advice(advice: dict) -> str:
     """Terminal text for an `advise` result."""
     op, d = advice["operating_point"], advice["diagnosis"]
+    models = advice.get("models") or []
+    several = len(models) > 1
+
+    def setting(where: dict) -> str:
+        """CAPACITY,REG, with the model's name first when the run has several."""
+        text = f"{where['capacity']},{where['regularization']}"
+        return f"{where['model']} {text}" if several else text
+
     lines = [
         advice["headline"],
         "",
         f"Advice for {advice['run_dir']}  ({advice['metric']}, target {advice['target']:g}, "
         f"{advice['confidence']:.0%} confidence)",
-        f"Operating point: capacity {op['capacity']}, regularisation {op['regularization']}, "
+        f"Operating point: {'model ' + op['model'] + ', ' if several else ''}capacity "
+        f"{op['capacity']}, regularisation {op['regularization']}, "
         f"{op['size']:,} training rows ({op['chosen']})",
+    ]
+    if several:
+        lines.append("Models (each at its best measured setting):")
+        for m in models:
+            plateau = ("-" if m["plateau"] is None else
+                       f"{_g(m['plateau'])} {_interval(m['plateau_band'])}")
+            own = (f"own plan {_money(m['plan_cost'])}" if m["reachable"]
+                   else f"no plan of its own ({m['binding_limit']})")
+            lines.append(f"  {m['name']:<12} {m['family'] or '':<12} {m['capacity_param']} / "
+                         f"{m['regularization_param']} {m['best_setting']:<12} validation "
+                         f"{_g(m['validation_error'])}   plateau {plateau}   {own}")
+    lines += [
         "",
         f"Verdict: {advice['verdict'].upper()}",
         f"  because {advice['verdict_reason']}",
@@ -533,13 +716,17 @@ def render_advice(advice: dict) -> str:
                      f"this setting's asymptote {_g(d['setting_asymptote'])} "
                      f"{_interval(d['setting_asymptote_band'])}")
     if advice["noise_floor"] is not None:
+        source = (f"model {advice['noise_floor_model']} setting" if several else "setting")
         lines.append(f"  noise floor {_g(advice['noise_floor'])} {_interval(advice['noise_floor_band'])}"
-                     f" (from setting {advice['noise_floor_setting']}: "
+                     f" (from {source} {advice['noise_floor_setting']}: "
                      f"{advice['noise_floor_evidence']})")
     else:
-        lines.append(f"  noise floor unknown (no converged settings of different capacity agree, "
-                     f"and none has its training error below its plateau); this model's "
-                     f"lowest plateau {_g(advice['plateau'])} {_interval(advice['plateau_band'])}"
+        kinds = "capacity or model" if several else "capacity"
+        whose = (f"the lowest plateau of any model, {advice.get('plateau_model')}'s" if several
+                 else "this model's lowest plateau")
+        lines.append(f"  noise floor unknown (no converged settings of different {kinds} agree, "
+                     f"and none has its training error below its plateau); {whose} "
+                     f"{_g(advice['plateau'])} {_interval(advice['plateau_band'])}"
                      f" (setting {advice['plateau_setting']}) bounds it from above")
     if advice.get("calibration"):
         from gridplan.calibration import Calibration
@@ -565,7 +752,7 @@ def render_advice(advice: dict) -> str:
                          f"target when its whole {advice['confidence']:.0%} interval is at or below it):")
             for i, step in enumerate(advice["plan"], 1):
                 to = step["to"]
-                lines.append(f"  {i}. {step['action']:<20} -> {to['capacity']},{to['regularization']} "
+                lines.append(f"  {i}. {step['action']:<20} -> {setting(to)} "
                              f"at {to['size']:,}   cost {_money(step['cost'])}   cumulative "
                              f"{_money(step['cumulative_cost'])}   predicted error "
                              f"{_g(step['predicted_error'])} {_interval(to['interval'])}"
@@ -586,8 +773,7 @@ def render_advice(advice: dict) -> str:
                 continue
             shown_data = True
         if item["reachable"] and item["plan_cost"] in tied:
-            tied[item["plan_cost"]].append(f"{item['action']} to {item['to']['capacity']},"
-                                           f"{item['to']['regularization']}")
+            tied[item["plan_cost"]].append(f"{item['action']} to {setting(item['to'])}")
             continue
         if item["reachable"]:
             tied[item["plan_cost"]] = []
@@ -596,7 +782,7 @@ def render_advice(advice: dict) -> str:
             continue
         to = item["to"]
         where = (f"to {to['size']:,} rows" if item["action"] == "more-data"
-                 else f"to {to['capacity']},{to['regularization']}")
+                 else f"to {setting(to)}")
         head = (f"  {item['action']:<20} {where:<18} step {_money(item['step_cost'])}  "
                 f"error {_g(item['predicted_error'])} {_interval(item['interval'])}")
         if item["reachable"]:

@@ -333,27 +333,30 @@ def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> 
     return resolve_run(config, allow_any_import=allow_any_estimator)
 
 
-def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0):
-    """Fit a learning curve per setting of a run (see gridplan.curves.fit_grid)."""
+def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0,
+               model: str | int | None = None):
+    """Fit a learning curve per setting of a run's model (see gridplan.curves.fit_grid)."""
     from gridplan.curvestore import cached_curves
-    cells = open_run(run_dir).cells()
+    cells = open_run(run_dir, model=model).cells()
     if cells.empty:
         raise GridplanError(f"{run_dir} holds no finished fits yet; run the grid first.")
     return cached_curves(run_dir, cells, n_boot=n_boot, seed=seed)
 
 
 def curves_report(run_dir: str | Path, *, target: float | None = None,
-                  confidence: float | None = None, n_boot: int = 100, seed: int = 0) -> dict:
-    """Per-setting curve summary (family, noise floor, forecasts, samples needed)."""
+                  confidence: float | None = None, n_boot: int = 100, seed: int = 0,
+                  model: str | int | None = None) -> dict:
+    """Per-setting curve summary of one model (family, noise floor, forecasts, samples needed)."""
     from gridplan.curves import curves_summary
-    run = open_run(run_dir)
+    run = open_run(run_dir, model=model)
     if target is None and run.config is not None:
         target = run.config.target_error
     if confidence is None:
         confidence = run.config.confidence if run.config is not None else 0.9
     if target is not None and target <= 0:
         raise GridplanError(f"--target must be a positive error, got {target:g}.")
-    fits = fit_curves(run_dir, n_boot=n_boot, seed=seed)
+    fits = fit_curves(run_dir, n_boot=n_boot, seed=seed, model=run.model)
     summary = curves_summary(fits, target=target, confidence=confidence)
     summary["metric"] = run.meta.get("metric")
+    summary["model"] = run.model_name
     return summary

@@ -287,30 +287,41 @@ def curves(run_dir: Path = typer.Argument(..., help="Run folder."),
            as_json: bool = typer.Option(False, "--json", help="Print JSON instead of a table."),
            plot: bool = typer.Option(False, "--plot", help="Also draw the curves to a PNG/SVG."),
            output: Optional[Path] = typer.Option(None, "-o", "--output", help="Plot file (with --plot)."),
+           model: Optional[str] = typer.Option(None, "--model",
+                                               help="Only this model (runs of several models; default all)."),
            boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve.")):
     """Fit, extrapolate and summarise each setting's learning curve."""
     import json
     from gridplan import api
     from gridplan.curves import render_summary
+    names = api.open_run(run_dir, model=model).model_names
+    chosen = [model] if model is not None or len(names) == 1 else names
     with _busy("fitting learning curves"):
-        summary = api.curves_report(run_dir, target=target, confidence=confidence, n_boot=boot)
+        summaries = [api.curves_report(run_dir, target=target, confidence=confidence,
+                                       n_boot=boot, model=name) for name in chosen]
     if as_json:
-        typer.echo(json.dumps(summary, indent=2))
+        typer.echo(json.dumps(summaries[0] if len(summaries) == 1 else {"models": summaries},
+                              indent=2))
     else:
-        typer.echo(render_summary(summary))
+        typer.echo("\n\n".join(render_summary(s) if len(summaries) == 1 else
+                                f"model {s['model']}\n{render_summary(s)}" for s in summaries))
     if plot:
-        path = _plot_curves(run_dir, summary, output, boot)
+        path = _plot_curves(run_dir, summaries[0], output, boot, chosen[0])
         if not as_json:
-            typer.echo(f"curves drawn to {path}")
+            typer.echo(f"curves drawn to {path}" + (f" (model {summaries[0]['model']}; pick "
+                                                     f"another with --model)"
+                                                     if len(summaries) > 1 else ""))
 
 
-def _plot_curves(run_dir: Path, summary: dict, output: Optional[Path], boot: int) -> Path:
+def _plot_curves(run_dir: Path, summary: dict, output: Optional[Path], boot: int,
+                 model: str | None) -> Path:
     from gridplan import api, views
-    run = api.open_run(run_dir)
-    fits = api.fit_curves(run_dir, n_boot=boot)
+    run = api.open_run(run_dir, model=model)
+    fits = api.fit_curves(run_dir, n_boot=boot, model=run.model)
     figure = views.small_multiples_figure(run, fits, target=summary.get("target"))
-    path = output or (Path(run_dir) / "curves.png")
-    api.refuse_run_file(run_dir, path, Path(run_dir) / "curves.png")
+    name = "curves.png" if run.model == 0 else f"curves-{run.model_name}.png"
+    path = output or (Path(run_dir) / name)
+    api.refuse_run_file(run_dir, path, Path(run_dir) / name)
     views.save_figure(figure, path)
     return path
 
@@ -324,19 +335,25 @@ def heatmap(run_dir: Path = typer.Argument(..., help="Run folder."),
                                                    help="Capacity label for --axis regularization."),
             output: Optional[Path] = typer.Option(None, "-o", "--output", help="PNG or SVG file."),
             with_plan: bool = typer.Option(False, "--plan", help="Draw the operating point and the plan."),
-            target: Optional[float] = typer.Option(None, "--target", help="Target error (default: the config's).")):
+            target: Optional[float] = typer.Option(None, "--target", help="Target error (default: the config's)."),
+            model: Optional[str] = typer.Option(None, "--model",
+                                                help="Model to draw (runs of several models; default "
+                                                     "the first, or the operating point's with --plan).")):
     """Draw the grid as a heatmap of training size against capacity or regularisation."""
     from gridplan import api, views
     axis = "regularization" if axis == "regularisation" else axis   # the other spelling
-    run = api.open_run(run_dir)
+    run = api.open_run(run_dir, model=model)
     advice = None
     if with_plan:
         from gridplan.advisor import advise as make_advice
         with _busy("fitting learning curves and planning"):
-            advice = make_advice(run_dir, target=target)
+            advice = make_advice(run_dir, target=target, model=model)
+        if model is None and advice["operating_point"]["model"] != run.model_name:
+            run = run.for_model(advice["operating_point"]["model"])
     figure = views.heatmap_figure(run, show=show, axis=axis, capacity=capacity, advice=advice,
                                   target=target)
-    default = Path(run_dir) / f"heatmap-{axis}-{show}.png"
+    named = "" if run.model == 0 else f"{run.model_name}-"
+    default = Path(run_dir) / f"heatmap-{named}{axis}-{show}.png"
     api.refuse_run_file(run_dir, output or default, default)
     path = views.save_figure(figure, output or default)
     typer.echo(f"heatmap written to {path}")
@@ -354,6 +371,10 @@ def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
                                                                "--regularisation-step",
                                                                help="Cost of one regularisation step."),
            max_samples: Optional[int] = typer.Option(None, "--max-samples", help="Most training rows ever available."),
+           switch_model: Optional[float] = typer.Option(None, "--switch-model",
+                                                        help="Cost of switching to another model of the run."),
+           model: Optional[str] = typer.Option(None, "--model",
+                                               help="Model the operating point belongs to (runs of several models)."),
            boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve."),
            as_json: bool = typer.Option(False, "--json", help="Print JSON instead of text.")):
     """Diagnose bias and variance and plan the cheapest way to the target error."""
@@ -363,7 +384,7 @@ def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
         advice = make_advice(run_dir, target=target, at=at, confidence=confidence,
                              per_sample=per_sample, capacity_step=capacity_step,
                              regularization_step=regularization_step, max_samples=max_samples,
-                             n_boot=boot)
+                             switch_model=switch_model, model=model, n_boot=boot)
     typer.echo(json.dumps(advice, indent=2) if as_json else render_advice(advice))
 
 
@@ -374,12 +395,14 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder."),
            target: Optional[float] = typer.Option(None, "--target", help="Target error (default: the config's)."),
            at: Optional[str] = typer.Option(None, "--at", help="Operating point as CAPACITY,REG labels."),
            confidence: Optional[float] = typer.Option(None, "--confidence"),
+           model: Optional[str] = typer.Option(None, "--model",
+                                               help="Model of the operating point (runs of several models)."),
            boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve.")):
     """Write one self-contained HTML report: grid, curves, diagnosis, plan and cautions."""
     from gridplan.report import write_report
     with _busy("writing the report"):
         path = write_report(run_dir, output, target=target, confidence=confidence, at=at,
-                            n_boot=boot)
+                            n_boot=boot, model=model)
     typer.echo(f"report written to {path}")
 
 

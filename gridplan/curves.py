@@ -29,7 +29,7 @@ import math
 import warnings
 from dataclasses import dataclass, field
 from statistics import NormalDist
-from typing import Callable, Iterable, Mapping
+from typing import Callable, Iterable, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -925,10 +925,11 @@ class SharedFloor:
     regularization_index: int
     informative: int          # how many settings had a well-determined asymptote
     evidence: str = ""        # why it counts as the data's floor, in words
+    model_index: int = 0      # the model table of that setting (runs of several models)
 
 
-def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
-                 confidence: float = FLOOR_CONFIDENCE) -> SharedFloor | None:
+def shared_floor(fits: Mapping[tuple, CurveFit], confidence: float = FLOOR_CONFIDENCE,
+                 model_names: Sequence[str] = ()) -> SharedFloor | None:
     """Estimate the noise floor from the settings whose asymptote is well determined.
 
     Every setting's asymptote is the noise floor plus its own bias, so the
@@ -942,6 +943,11 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
     settings are biased, so the data bound the floor only from above).
     Curves still falling steeply are left out: their asymptote is an
     extrapolation that can land anywhere down to zero.
+
+    Keys are (capacity_index, regularization_index), or (model_index,
+    capacity_index, regularization_index) when the settings of several
+    model tables (named `model_names`) are pooled: another model counts as
+    another capacity.
     """
     informative = {}
     for key, fit in fits.items():
@@ -970,16 +976,14 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
     # setting's training error lies clearly below its plateau (the two errors
     # bracket it, so the model is not held up there by its own bias).
     agreeing = [k for k, (other, other_low, other_high) in informative.items()
-                if k[0] != key[0] and low <= other <= high and other_low <= value <= other_high]
+                if k[:-1] != key[:-1] and low <= other <= high and other_low <= value <= other_high]
+    agreeing.sort(key=lambda k: (k[0] == key[0], k))    # another model first
     train = fits[key].train_mean
     bracketed = train is not None and np.isfinite(train[-1]) and float(train[-1]) < low
     if not agreeing and not bracketed:
         return None
     if agreeing:
-        other = fits[agreeing[0]].setting
-        evidence = (f"converged settings of different capacity level off at the same error "
-                    f"(e.g. capacity {fits[key].setting.capacity if fits[key].setting else key[0]} "
-                    f"and {other.capacity if other else agreeing[0][0]})")
+        evidence = _agreement_words(fits, key, agreeing[0], model_names)
     else:
         evidence = (f"a converged setting's training error ({float(train[-1]):.3g}) lies below "
                     f"its plateau and its validation error above it")
@@ -991,8 +995,32 @@ def shared_floor(fits: Mapping[tuple[int, int], CurveFit],
     if value > ceiling:
         return None
     high = min(high, ceiling)
-    return SharedFloor(float(value), float(max(low, 0.0)), float(high), int(key[0]),
-                       int(key[1]), len(informative), evidence)
+    return SharedFloor(float(value), float(max(low, 0.0)), float(high), int(key[-2]),
+                       int(key[-1]), len(informative), evidence,
+                       int(key[0]) if len(key) == 3 else 0)
+
+
+def _agreement_words(fits: Mapping[tuple, CurveFit], key: tuple, other: tuple,
+                     model_names: Sequence[str]) -> str:
+    """Why two converged settings agreeing makes a floor, naming both."""
+    def capacity(k: tuple) -> str:
+        info = fits[k].setting
+        return str(info.capacity if info else k[-2])
+    if len(key) == 3 and key[0] != other[0] and model_names:
+        return (f"converged settings of different models level off at the same error "
+                f"(e.g. {model_names[key[0]]} at capacity {capacity(key)} and "
+                f"{model_names[other[0]]} at capacity {capacity(other)})")
+    of_model = f" of model {model_names[key[0]]}" if len(key) == 3 and model_names else ""
+    return (f"converged settings of different capacity level off at the same error "
+            f"(e.g. capacity {capacity(key)} and {capacity(other)}{of_model})")
+
+
+def floor_across_models(grids: Sequence[Mapping[tuple[int, int], CurveFit]],
+                        model_names: Sequence[str],
+                        confidence: float = FLOOR_CONFIDENCE) -> SharedFloor | None:
+    """The noise floor from the settings of every model table of a run pooled (see shared_floor)."""
+    pooled = {(m, *key): fit for m, grid in enumerate(grids) for key, fit in grid.items()}
+    return shared_floor(pooled, confidence, model_names) if pooled else None
 
 
 class GridCurves(dict):

@@ -151,7 +151,8 @@ class CostModel(Costs):
     less_capacity_step: float | None = None
 
     def __post_init__(self) -> None:
-        for name in ("per_sample", "capacity_step", "regularization_step", "per_fit_second"):
+        for name in ("per_sample", "capacity_step", "regularization_step", "per_fit_second",
+                     "switch_model"):
             value = getattr(self, name)
             if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
                 raise GridplanError(f"cost {name} must be a non-negative number, got {value!r}.")

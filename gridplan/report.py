@@ -205,13 +205,18 @@ def _looks_like_backtest(result: Any) -> bool:
 
 def gather_inputs(run_dir: str | Path, *, target: float | None = None,
                   confidence: float | None = None, at: str | None = None,
-                  n_boot: int = 100, seed: int = 0) -> ReportInputs:
-    """Open the run, fit its curves once, and ask the advisor (when a target is known)."""
+                  n_boot: int = 100, seed: int = 0, model: str | None = None) -> ReportInputs:
+    """Open the run, fit its curves once, and ask the advisor (when a target is known).
+
+    With several models the pictures and tables show the operating point's
+    model (`model`, or the one the advisor stands at).
+    """
     from gridplan import api
     from gridplan.advisor import advise, parse_operating_point
     from gridplan.curves import curves_summary
 
-    run = api.open_run(run_dir)
+    run = api.open_run(run_dir, model=model)
+    several = len(run.model_names) > 1
     cells = run.cells()
     if cells.empty or not (cells["status"] == "ok").any():
         raise GridplanError(f"{run_dir} holds no finished fits yet; run the grid before writing a report.")
@@ -222,20 +227,30 @@ def gather_inputs(run_dir: str | Path, *, target: float | None = None,
                            (config.target_error if config is not None else None))
     confidence = _check_confidence(confidence if confidence is not None else
                                    (config.confidence if config is not None else 0.9))
-    fits = api.fit_curves(run_dir, n_boot=n_boot, seed=seed)
-    summary = curves_summary(fits, target=target, confidence=confidence)
     advice, note = None, None
-    if target is None:
-        note = ("no target error is set (neither [goal] target in the config nor a target option), "
-                "so there is no verdict against a target and no plan.")
-    else:
+
+    def ask(curves=None) -> None:
+        nonlocal advice, note
         try:
-            advice = advise(run_dir, target=target, confidence=confidence, at=at,
-                            n_boot=n_boot, seed=seed, curves=fits)
+            advice = advise(run_dir, target=target, confidence=confidence, at=at, model=model,
+                            n_boot=n_boot, seed=seed, curves=curves)
         except GridplanError as problem:
             if at is not None:
                 raise
             note = f"the advisor could not plan for this run: {problem}"
+
+    if target is None:
+        note = ("no target error is set (neither [goal] target in the config nor a target option), "
+                "so there is no verdict against a target and no plan.")
+    elif several:
+        ask()
+        if advice is not None:
+            run = api.open_run(run_dir, model=advice["operating_point"]["model"])
+            cells = run.cells()
+    fits = api.fit_curves(run_dir, n_boot=n_boot, seed=seed, model=run.model)
+    summary = curves_summary(fits, target=target, confidence=confidence)
+    if target is not None and not several:
+        ask(fits)
     backtest, backtest_note = read_backtest(run_dir)
     return ReportInputs(run=run, cells=cells, fits=fits, summary=summary, target=target,
                         confidence=confidence, advice=advice, advice_note=note,
@@ -440,6 +455,8 @@ def _costs_words(inputs: ReportInputs) -> list[tuple[str, str]]:
              ("Compute cost per second of fitting", _money(values["per_fit_second"])),
              ("Most rows that can ever be had",
               "no limit set" if values["max_samples"] is None else _count(values["max_samples"]))]
+    if inputs.advice is not None and len(inputs.advice.get("models") or []) > 1:
+        rows.append(("Cost of switching to another model", _money(c["switch_model"])))
     if values["feature_groups"]:
         rows.append(("Cost per added feature group", "; ".join(
             f"{k}: {_money(v)}" for k, v in values["feature_groups"].items())))
@@ -452,6 +469,8 @@ def _job_section(inputs: ReportInputs, number: int) -> Markup:
     features = (identity.get("data") or {}).get("features") or (
         list(config.features) if config is not None and config.features else None)
     model = str(meta.get("model", "?"))
+    if len(run.model_names) > 1:
+        model = f"{run.model_name}: {model} (the operating point's; every model under Models compared)"
     params = config.params if config is not None else {}
     if params:
         model += " with " + ", ".join(f"{k} = {v}" for k, v in params.items())
@@ -526,17 +545,22 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
         rows.append(("This setting's asymptote", _level_band(
             d["setting_asymptote"], d["setting_asymptote_band"], abs(d["validation_error"] or 1.0))))
     scale = abs(d["validation_error"] or 1.0)
+    several = len(a.get("models") or []) > 1
     if a["noise_floor"] is not None:
         floor = _level_band(a["noise_floor"], a["noise_floor_band"], scale)
-        floor += f" (at setting {a['noise_floor_setting']}: {a['noise_floor_evidence']})"
+        where = (f"model {a['noise_floor_model']}, setting" if several else "setting")
+        floor += f" (at {where} {a['noise_floor_setting']}: {a['noise_floor_evidence']})"
         rows.append(("Noise floor", floor))
     else:
-        rows.append(("Noise floor", "unknown: no converged settings of different capacity agree, "
+        kinds = "capacity or model" if several else "capacity"
+        rows.append(("Noise floor", f"unknown: no converged settings of different {kinds} agree, "
                                     "and none has its training error below its plateau"))
         if a.get("plateau") is not None:
-            rows.append(("This model's lowest plateau (an upper bound on the floor)",
+            where = (f"model {a['plateau_model']}, setting" if several else "setting")
+            rows.append(("Lowest plateau of any model (an upper bound on the floor)" if several
+                         else "This model's lowest plateau (an upper bound on the floor)",
                          _level_band(a["plateau"], a["plateau_band"], scale)
-                         + f" (at setting {a['plateau_setting']})"))
+                         + f" (at {where} {a['plateau_setting']})"))
     if a.get("calibration"):
         from gridplan.calibration import Calibration
         rows.append(("Forecasts beyond the data", Calibration(**a["calibration"]).sentence()))
@@ -568,7 +592,38 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
 
 
 def _to_words(run: "Run", to: Mapping) -> str:
+    """A plan state in words; one in another model of the run names that model and its parameters."""
+    model = to.get("model")
+    if model is not None and model != run.model_name:
+        other = run.for_model(model)
+        return f"model {model}: {_setting_words(other, to['capacity'], to['regularization'])}"
     return _setting_words(run, to["capacity"], to["regularization"])
+
+
+def _models_section(inputs: ReportInputs, number: int) -> Markup:
+    """Several model tables: what each offers at its best measured setting."""
+    a = inputs.advice
+    rows = []
+    for m in a["models"]:
+        own = (f"{_money(m['plan_cost'])}" if m["reachable"]
+               else f"none ({m['binding_limit']})")
+        rows.append([m["name"], m["family"] or "", f"{m['capacity_param']} / "
+                     f"{m['regularization_param']}", m["best_setting"],
+                     _num(m["validation_error"]),
+                     "–" if m["plateau"] is None else _with_band(m["plateau"], m["plateau_band"]),
+                     own])
+    floor = ("The noise floor draws on every model: " + (
+        f"{_num(a['noise_floor'])} {_band(a['noise_floor_band'])}, {a['noise_floor_evidence']}."
+        if a["noise_floor"] is not None else
+        "unknown; the lowest plateau of any model bounds it from above."))
+    return _section("models", number, "Models compared", [
+        _p(f"Each model at its best measured setting at the largest size. A plan may switch model "
+           f"for {_money(a['costs'].get('switch_model'))} and go on with that model's own cheapest "
+           f"plan; the pictures below show model {inputs.run.model_name}, where the operating "
+           f"point is."),
+        _table(["model", "kind", "capacity / regularisation", "best setting", "validation error",
+                "plateau [band]", "own plan from there"], rows, css="numbers"),
+        _p(floor)])
 
 
 def _plan_section(inputs: ReportInputs, number: int) -> Markup:
@@ -883,12 +938,15 @@ def _style() -> str:
 
 def report_html(inputs: ReportInputs) -> str:
     """The whole report as one HTML document."""
-    sections = [_job_section, _diagnosis_section, _plan_section, _actions_section, _maps_section,
-                _curves_section, _settings_section, _backtest_section, _skipped_section,
-                _cautions_section]
+    sections = [_job_section, _models_section, _diagnosis_section, _plan_section, _actions_section,
+                _maps_section, _curves_section, _settings_section, _backtest_section,
+                _skipped_section, _cautions_section]
+    several = inputs.advice is not None and len(inputs.advice.get("models") or []) > 1
     parts, number = [], 0
     for build in sections:
         if build is _actions_section and inputs.advice is None:
+            continue
+        if build is _models_section and not several:
             continue
         number += 1
         parts.append(build(inputs, number))
@@ -930,7 +988,8 @@ def _writable_target(run_dir: Path, out: str | Path | None) -> Path:
 
 def write_report(run_dir: str | Path, out: str | Path | None = None, *,
                  target: float | None = None, confidence: float | None = None,
-                 at: str | None = None, n_boot: int = 100, seed: int = 0) -> Path:
+                 at: str | None = None, n_boot: int = 100, seed: int = 0,
+                 model: str | None = None) -> Path:
     """Write the HTML report of a run (default RUN_DIR/report.html) and return its path.
 
     `target`, `confidence` and `at` ("CAPACITY,REG") override the config as in
@@ -943,7 +1002,7 @@ def write_report(run_dir: str | Path, out: str | Path | None = None, *,
         raise GridplanError(f"{run_dir} is not a gridplan run folder (no {STORE_NAME}).")
     path = _writable_target(run_dir, out)
     return write_inputs(gather_inputs(run_dir, target=target, confidence=confidence, at=at,
-                                      n_boot=n_boot, seed=seed), path)
+                                      n_boot=n_boot, seed=seed, model=model), path)
 
 
 def write_inputs(inputs: ReportInputs, path: Path) -> Path:

@@ -371,13 +371,25 @@ def _step_text(number: int, step: Mapping[str, Any], state: Mapping[str, Any], r
 
 
 def _advice_path(advice: Mapping[str, Any], run: "Run") -> tuple[dict | None, list[tuple[dict, dict]]]:
-    """The operating point's state and (step, state reached) for each plan step."""
+    """The operating point's state and (step, state reached) for each plan step.
+
+    States in another model of the run than `run`'s are empty (not drawn here).
+    """
+    here = getattr(run, "model_name", None)
+
+    def elsewhere(where: Any) -> bool:
+        return isinstance(where, Mapping) and where.get("model") not in (None, here)
+
     start = advice.get("operating_point")
-    state = _state_of(start, {}, run) if isinstance(start, Mapping) else None
+    state = _state_of(start, {}, run) if isinstance(start, Mapping) and not elsewhere(start) else None
     steps = []
     current = dict(state or {})
     for step in advice.get("plan") or []:
         if not isinstance(step, Mapping):
+            continue
+        if elsewhere(step.get("to")):
+            current = {}
+            steps.append((step, {}))
             continue
         current = _state_of(step, current, run)
         steps.append((step, dict(current)))
