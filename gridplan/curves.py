@@ -908,9 +908,19 @@ CELL_COLUMNS = ("capacity_index", "regularization_index", "capacity", "regulariz
 #: its curve has nearly converged (the measured error at the largest size is
 #: within CONVERGED_FRACTION x the asymptote of it, and the curve falls by
 #: less than that error's standard error over the next doubling) and it is
-#: consistent with the setting's own training/validation bracket.
+#: consistent with the setting's own training/validation bracket. Converged
+#: also means the two learning curves have met: training error within
+#: CONVERGED_GAP x the validation error of it at the largest size. A large
+#: gap is variance that more rows still remove, so the curve's level there
+#: is no floor (a deep tree on a smooth target levels off for a while far
+#: above the noise, training error well below it).
 INFORMATIVE_FLOOR_RATIO = 1.0
 CONVERGED_FRACTION = 0.1
+CONVERGED_GAP = 0.2
+#: Two plateaus outside each other's bands may still agree (and so make a
+#: floor) when each is well determined: its band no wider than this share of
+#: its value (see _same_level).
+AGREEING_BAND_RATIO = 0.25
 FLOOR_CONFIDENCE = 0.9
 
 
@@ -963,30 +973,28 @@ def shared_floor(fits: Mapping[tuple, CurveFit], confidence: float = FLOOR_CONFI
             continue          # still falling by more than its own noise per doubling
         if fit.midpoint_check(confidence).get("disagree"):
             continue
+        if fit.train_mean is not None and np.isfinite(fit.train_mean[-1]) and \
+                fit.validation_mean[-1] - fit.train_mean[-1] > CONVERGED_GAP * fit.validation_mean[-1]:
+            continue          # training and validation curves have not met yet
         informative[key] = (fit.asymptote, low, high)
     if not informative:
         return None
     key = min(informative, key=lambda k: (informative[k][2], informative[k][0], k))
     value, low, high = informative[key]
     # One converged curve cannot tell noise from its own bias: a model too
-    # simple for the data levels off above the floor with training and
-    # validation error together. The floor counts as known when a converged
-    # setting of another capacity levels off at the same height (each
-    # plateau inside the other's band), or when this
-    # setting's training error lies clearly below its plateau (the two errors
-    # bracket it, so the model is not held up there by its own bias).
-    agreeing = [k for k, (other, other_low, other_high) in informative.items()
-                if k[:-1] != key[:-1] and low <= other <= high and other_low <= value <= other_high]
+    # simple for the data levels off above the floor, and its training and
+    # validation errors bracket its own plateau, not the data's floor (the
+    # bracket holds for any model's asymptote, biased or not). The floor
+    # counts as known only when a converged setting of another capacity or
+    # another model levels off at the same height (see _same_level): two
+    # different amounts of flexibility sharing one level
+    # leave no room for bias that more flexibility would remove.
+    agreeing = [k for k, band in informative.items()
+                if k[:-1] != key[:-1] and _same_level((value, low, high), band)]
     agreeing.sort(key=lambda k: (k[0] == key[0], k))    # another model first
-    train = fits[key].train_mean
-    bracketed = train is not None and np.isfinite(train[-1]) and float(train[-1]) < low
-    if not agreeing and not bracketed:
+    if not agreeing:
         return None
-    if agreeing:
-        evidence = _agreement_words(fits, key, agreeing[0], model_names)
-    else:
-        evidence = (f"a converged setting's training error ({float(train[-1]):.3g}) lies below "
-                    f"its plateau and its validation error above it")
+    evidence = _agreement_words(fits, key, agreeing[0], model_names)
     # The floor lies below every measured validation error (up to its noise).
     # When the converged settings' floor sits above another setting's
     # measurement they are biased, and the data do not pin the floor down.
@@ -998,6 +1006,25 @@ def shared_floor(fits: Mapping[tuple, CurveFit], confidence: float = FLOOR_CONFI
     return SharedFloor(float(value), float(max(low, 0.0)), float(high), int(key[-2]),
                        int(key[-1]), len(informative), evidence,
                        int(key[0]) if len(key) == 3 else 0)
+
+
+def _same_level(one: tuple[float, float, float], two: tuple[float, float, float]) -> bool:
+    """Two plateaus (value, low, high) that level off at one height.
+
+    Each inside the other's band; or, when both are well determined (band
+    no wider than AGREEING_BAND_RATIO x the value), their difference within
+    the root sum of squares of the band half-widths facing each other (the
+    usual test of a difference of two independent estimates, normal
+    approximation). A barely identified level agrees with nothing by the
+    second rule, or it would agree with anything.
+    """
+    (value, low, high), (other, other_low, other_high) = one, two
+    if low <= other <= high and other_low <= value <= other_high:
+        return True
+    if any(h - lo > AGREEING_BAND_RATIO * max(v, _TINY) for v, lo, h in (one, two)):
+        return False
+    (lower, _, lower_high), (upper, upper_low, _) = sorted([one, two])
+    return upper - lower <= math.hypot(lower_high - lower, upper - upper_low)
 
 
 def _agreement_words(fits: Mapping[tuple, CurveFit], key: tuple, other: tuple,
