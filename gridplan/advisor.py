@@ -32,6 +32,7 @@ from gridplan.diagnosis import (
 from gridplan.errors import GridplanError
 from gridplan.wording import sig
 from gridplan.jsonable import plain as _plain
+from gridplan.results import Advice
 from gridplan.planner import (
     CostModel,
     State,
@@ -249,7 +250,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
            max_samples: int | None = None, less_capacity_step: float | None = None,
            per_fit_second: float | None = None, switch_model: float | None = None,
            thresholds: Thresholds | None = None, model: str | None = None,
-           n_boot: int = DEFAULT_BOOT, seed: int = 0, curves: GridCurves | None = None) -> dict:
+           n_boot: int = DEFAULT_BOOT, seed: int = 0, curves: GridCurves | None = None) -> Advice:
     """Diagnose a run at the operating point and plan the cheapest way to the target.
 
     `at` is "CAPACITY,REG" (labels) of model `model` (default: the first
@@ -267,7 +268,8 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
                    max_samples=max_samples, less_capacity_step=less_capacity_step,
                    per_fit_second=per_fit_second, thresholds=thresholds, n_boot=n_boot, seed=seed)
     if len(names) == 1:
-        return _with_models([_advise_model(run, at=at, curves=curves, **options)], 0, None)
+        return Advice.from_dict(_with_models([_advise_model(run, at=at, curves=curves, **options)],
+                                             0, None))
     from gridplan.curvestore import cached_curves
     from gridplan.curves import floor_across_models
     runs = [run.for_model(i) for i in range(len(names))]
@@ -289,7 +291,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
             each[here] = _advise_model(runs[here], at=at, curves=grids[here], floor=floor,
                                        floor_where=floor_where, **options)
     costs = _cost_model(run.config, {"switch_model": switch_model})
-    return _with_models(each, here, costs.switch_model)
+    return Advice.from_dict(_with_models(each, here, costs.switch_model))
 
 
 def _setting_label(run, ci: int, ri: int) -> str:
@@ -513,9 +515,7 @@ def _with_models(each: list[dict], here: int, switch_cost: float | None) -> dict
         for i, other in enumerate(each):
             if i == here:
                 continue
-            dest = dict(other["operating_point"])
-            dest.update(predicted_error=other["diagnosis"]["validation_error"],
-                        interval=_measured_interval(other), measured=True)
+            dest = _measured_place(other)
             total = switch_cost + other["plan_cost"] if other["reachable"] else None
             then = [f"{s['action']} to {s['to']['capacity']},{s['to']['regularization']}"
                     + (f" at {s['to']['size']:,}" if s["action"] == "more-data" else "")
@@ -537,9 +537,7 @@ def _with_models(each: list[dict], here: int, switch_cost: float | None) -> dict
                    key=lambda s: (s[0], s[1]))
         if best is not None and (not advice["reachable"] or best[0] < advice["plan_cost"]):
             total, i, other, dest, _ = best
-            start = dict(advice["operating_point"])
-            start.update(predicted_error=advice["diagnosis"]["validation_error"],
-                         interval=_measured_interval(advice), measured=True)
+            start = _measured_place(advice)
             plan = [{"action": "switch-model", "cost": switch_cost,
                      "cumulative_cost": switch_cost, "predicted_error": dest["predicted_error"],
                      "worse_on_the_way": bool(dest["predicted_error"] > start["predicted_error"]),
@@ -552,9 +550,14 @@ def _with_models(each: list[dict], here: int, switch_cost: float | None) -> dict
     return advice
 
 
-def _measured_interval(advice: dict) -> list:
-    """The operating point's measured interval (the corrected-t test of its folds)."""
-    return list(advice["operating_point"]["interval"])
+def _measured_place(advice: dict) -> dict:
+    """The operating point as a plan state: its measured mean and corrected-t interval."""
+    op = advice["operating_point"]
+    low, high = op["interval"]
+    return {"model": op["model"], "capacity": op["capacity"],
+            "regularization": op["regularization"], "size": op["size"],
+            "predicted_error": advice["diagnosis"]["validation_error"], "interval": [low, high],
+            "error_at_confidence": high, "measured": True}
 
 
 def headline(advice: dict) -> str:

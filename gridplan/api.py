@@ -345,8 +345,8 @@ def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0,
 
 def curves_report(run_dir: str | Path, *, target: float | None = None,
                   confidence: float | None = None, n_boot: int = 100, seed: int = 0,
-                  model: str | int | None = None) -> dict:
-    """Per-setting curve summary of one model (family, noise floor, forecasts, samples needed)."""
+                  model: str | int | None = None):
+    """Per-setting curve summary of one model (a gridplan.results.CurvesSummary) (family, noise floor, forecasts, samples needed)."""
     from gridplan.curves import curves_summary
     run = open_run(run_dir, model=model)
     if target is None and run.config is not None:
@@ -356,7 +356,6 @@ def curves_report(run_dir: str | Path, *, target: float | None = None,
     if target is not None and target <= 0:
         raise GridplanError(f"--target must be a positive error, got {target:g}.")
     fits = fit_curves(run_dir, n_boot=n_boot, seed=seed, model=run.model)
+    import dataclasses
     summary = curves_summary(fits, target=target, confidence=confidence)
-    summary["metric"] = run.meta.get("metric")
-    summary["model"] = run.model_name
-    return summary
+    return dataclasses.replace(summary, metric=run.meta.get("metric"), model=run.model_name)

@@ -16,6 +16,7 @@ import numpy as np
 from gridplan import api
 from gridplan.config import Config
 from gridplan.errors import GridplanError
+from gridplan.jsonable import plain as _plain
 from gridplan.spec import GridSpec, resolve
 from gridplan.splits import size_ladder, smallest_training_fold
 
@@ -47,8 +48,8 @@ def backtest_spec(spec: GridSpec, fraction: float) -> GridSpec:
 
 def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None = None,
              jobs: int | None = None, n_boot: int = 100, seed: int = 0,
-             progress=None, allow_any_estimator: bool = False) -> dict:
-    """Run the backtest grid (resumably) and compare forecasts with measurements."""
+             progress=None, allow_any_estimator: bool = False):
+    """Run the backtest grid (resumably) and compare forecasts with measurements (a results.Backtest)."""
     from gridplan.curves import fit_grid
     spec = backtest_spec(resolve(config, allow_any_import=allow_any_estimator), fraction)
     run_dir = Path(out) if out is not None else api.default_run_dir(config).with_name(
@@ -79,13 +80,15 @@ def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None =
     if not rows:
         raise GridplanError("no setting had enough finished fits for a backtest.")
     rel = [r["rel_error"] for r in rows if r["rel_error"] is not None]
-    return {"run_dir": str(run_dir), "fraction": fraction, "confidence": config.confidence,
+    from gridplan.results import Backtest
+    return Backtest.from_dict(_plain({
+            "run_dir": str(run_dir), "fraction": fraction, "confidence": config.confidence,
             "metric": config.metric, "fitted_sizes": [int(s) for s in spec.sizes[:-1]],
             "full_size": int(full), "rows": rows,
             "median_abs_rel_error": float(np.median(rel)) if rel else None,
             "coverage": float(np.mean([r["inside_band"] for r in rows])),
             "unfitted": list(fits.unfitted),
-            "calibration": fits.calibration.as_dict() if fits.calibration is not None else None}
+            "calibration": fits.calibration.as_dict() if fits.calibration is not None else None}))
 
 
 def render_backtest(result: dict) -> str:

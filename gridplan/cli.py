@@ -300,8 +300,8 @@ def curves(run_dir: Path = typer.Argument(..., help="Run folder."),
         summaries = [api.curves_report(run_dir, target=target, confidence=confidence,
                                        n_boot=boot, model=name) for name in chosen]
     if as_json:
-        typer.echo(json.dumps(summaries[0] if len(summaries) == 1 else {"models": summaries},
-                              indent=2))
+        typer.echo(json.dumps(summaries[0].to_dict() if len(summaries) == 1 else
+                              {"models": [s.to_dict() for s in summaries]}, indent=2))
     else:
         typer.echo("\n\n".join(render_summary(s) if len(summaries) == 1 else
                                 f"model {s['model']}\n{render_summary(s)}" for s in summaries))
@@ -385,7 +385,7 @@ def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
                              per_sample=per_sample, capacity_step=capacity_step,
                              regularization_step=regularization_step, max_samples=max_samples,
                              switch_model=switch_model, model=model, n_boot=boot)
-    typer.echo(json.dumps(advice, indent=2) if as_json else render_advice(advice))
+    typer.echo(json.dumps(advice.to_dict(), indent=2) if as_json else render_advice(advice))
 
 
 @app.command()
@@ -424,7 +424,7 @@ def backtest(config: Path = typer.Argument(..., help="TOML config file."),
     result = run_backtest(cfg, fraction=fraction, out=out, jobs=jobs, n_boot=boot,
                           allow_any_estimator=allow_any_estimator,
                           progress=None if quiet else _stderr_progress())
-    typer.echo(json.dumps(result, indent=2) if as_json else render_backtest(result))
+    typer.echo(json.dumps(result.to_dict(), indent=2) if as_json else render_backtest(result))
     _keep_backtest(api.default_run_dir(cfg), result)
 
 
@@ -433,7 +433,8 @@ def _keep_backtest(run_dir: Path, result: dict) -> None:
     import json
     from gridplan.report import BACKTEST_FILE
     if (run_dir / "store.sqlite").is_file():
-        (run_dir / BACKTEST_FILE).write_text(json.dumps(result, indent=2), encoding="utf-8")
+        (run_dir / BACKTEST_FILE).write_text(json.dumps(result.to_dict(), indent=2),
+                                             encoding="utf-8")
 
 
 def _stderr_progress():

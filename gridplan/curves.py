@@ -1218,8 +1218,8 @@ def _setting_summary(fit: CurveFit, target: float | None, confidence: float,
 
 def curves_summary(fits: Mapping[tuple[int, int], CurveFit], *, target: float | None,
                    confidence: float = 0.9, current_size: float | None = None,
-                   max_size: float = DEFAULT_MAX_SIZE) -> dict:
-    """A JSON-ready summary: one entry per setting with floor, forecasts and samples needed.
+                   max_size: float = DEFAULT_MAX_SIZE) -> "CurvesSummary":
+    """A typed summary: one entry per setting with floor, forecasts and samples needed.
 
     Forecasts are at 2x and 4x `current_size` (default: each setting's
     largest measured size).
@@ -1228,10 +1228,12 @@ def curves_summary(fits: Mapping[tuple[int, int], CurveFit], *, target: float | 
     settings = [_setting_summary(fits[key], target, confidence, current_size, max_size)
                 for key in sorted(fits)]
     calibration = getattr(fits, "calibration", None)
-    return _plain({"target": target, "confidence": confidence,
-                   "wide_band_ratio": WIDE_BAND_RATIO, "settings": settings,
-                   "unfitted": list(getattr(fits, "unfitted", [])),
-                   "calibration": calibration.as_dict() if calibration is not None else None})
+    from gridplan.results import CurvesSummary
+    return CurvesSummary.from_dict(_plain({
+        "target": target, "confidence": confidence, "wide_band_ratio": WIDE_BAND_RATIO,
+        "settings": settings, "unfitted": list(getattr(fits, "unfitted", [])),
+        "calibration": calibration.as_dict() if calibration is not None else None,
+        "metric": None, "model": None}))
 
 
 def _number(value, digits: int = 3) -> str:

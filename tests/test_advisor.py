@@ -77,7 +77,7 @@ def test_high_bias_ranks_more_capacity_first(quadratic):
     data = [a for a in advice["actions"] if a["action"] == "more-data"]
     assert data and all(a["plan_cost"] > 150.0 for a in data)
     assert {a["action"] for a in advice["actions"]} <= set(ACTIONS)
-    json.dumps(advice)                                  # the JSON face needs plain values
+    json.dumps(advice.to_dict())                                 # the JSON face needs plain values
 
 
 def test_numbers_behind_the_verdict_come_from_the_store(quadratic):

@@ -317,7 +317,7 @@ def test_fit_grid_summary_and_table():
     assert sorted(fits) == [(0, 0), (0, 1), (1, 0), (1, 1)]
     assert [u["capacity_index"] for u in fits.unfitted] == [2]
     summary = curves_summary(fits, target=0.12, confidence=0.8)
-    json.dumps(summary)
+    json.dumps(summary.to_dict())
     rows = {(s["capacity_index"], s["regularization_index"]): s for s in summary["settings"]}
     assert rows[(1, 1)]["skipped_rows"] == 1 and rows[(0, 0)]["skipped_rows"] == 0
     assert rows[(0, 0)]["reachable"] is False and rows[(0, 0)]["samples_needed"] is None

@@ -226,3 +226,21 @@ def test_report_compares_the_models_with_the_advice_numbers(runs, tmp_path):
         f'data-value="{advice["plan_cost"]}"' in text
     assert "model smooth: degree" in text           # the switched-to state names its model
     assert advice["headline"] in text
+
+
+def test_advice_is_one_typed_object_for_json_text_and_report(runs):
+    from gridplan.results import Advice, Move, PlanStep
+    _, both, _ = runs
+    advice = advise(both, model="trees")
+    assert isinstance(advice, Advice) and isinstance(advice.plan[0], PlanStep)
+    assert all(isinstance(move, Move) for move in advice.actions)
+    assert advice["plan"][0]["from"]["model"] == advice.plan[0].from_.model == "trees"
+    data = advice.to_dict()
+    assert list(data) == Advice.json_keys()                    # the JSON keys are the fields
+    text = json.dumps(data)                                    # plain JSON values throughout
+    again = Advice.from_dict(json.loads(text))
+    assert again == advice
+    with pytest.raises(ValueError, match="unknown keys \\['extra'\\]"):
+        Advice.from_dict({**data, "extra": 1})
+    with pytest.raises(ValueError, match="missing keys \\['plan'\\]"):
+        Advice.from_dict({k: v for k, v in data.items() if k != "plan"})

@@ -163,7 +163,7 @@ def variant(grid, tmp_path_factory):
                                   HOSTILE_MESSAGE) for fold in range(3)])
     result = backtest(load_config(config_path), fraction=0.5, out=tmp / "backtest", jobs=1,
                       n_boot=N_BOOT, seed=0)
-    (copy / BACKTEST_FILE).write_text(json.dumps(result), encoding="utf-8")
+    (copy / BACKTEST_FILE).write_text(json.dumps(result.to_dict()), encoding="utf-8")
     path = write_report(copy, copy / "shared" / "view.html", n_boot=N_BOOT, seed=0)
     return path, path.read_text(encoding="utf-8"), result
 
