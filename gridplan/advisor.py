@@ -30,7 +30,7 @@ from gridplan.diagnosis import (
     estimate_noise_floor,
 )
 from gridplan.errors import GridplanError
-from gridplan.wording import sig
+from gridplan.wording import money, sig
 from gridplan.jsonable import plain as _plain
 from gridplan.results import Advice
 from gridplan.planner import (
@@ -643,10 +643,8 @@ def _g(value, digits: int = 3) -> str:
 
 
 def _money(value) -> str:
-    """A cost: whole numbers without decimals, others with two."""
-    if value is None:
-        return "-"
-    return f"{value:,.0f}" if float(value).is_integer() else f"{value:,.2f}"
+    """A cost: whole numbers without decimals, others with two (wording.money)."""
+    return money(value)
 
 
 def _interval(pair) -> str:

@@ -51,44 +51,50 @@ def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None =
              progress=None, allow_any_estimator: bool = False):
     """Run the backtest grid (resumably) and compare forecasts with measurements (a results.Backtest)."""
     from gridplan.curves import fit_grid
-    spec = backtest_spec(resolve(config, allow_any_import=allow_any_estimator), fraction)
+    from gridplan.results import Backtest
+    from gridplan.spec import RunSpec, resolve_run
+    whole = resolve_run(config, allow_any_import=allow_any_estimator)
+    spec = RunSpec(config, tuple(backtest_spec(m, fraction) for m in whole.models))
     run_dir = Path(out) if out is not None else api.default_run_dir(config).with_name(
         f"{config.name}-backtest")
     api.run(config, out=run_dir, jobs=jobs, spec=spec, progress=progress)
-    cells = api.open_run(run_dir).cells()
     full = spec.sizes[-1]
-    ok = cells[cells.status == "ok"]
-    fits = fit_grid(ok[ok.train_size < full], n_boot=n_boot, seed=seed)
-    measured = ok[ok.train_size == full].groupby(
-        ["capacity_index", "regularization_index"]).validation_error.mean()
-    rows = []
-    for key, fit in sorted(fits.items()):
-        if key not in measured.index:
-            continue
-        low, high = fit.band(float(full), config.confidence)
-        predicted = float(fit.predict(float(full)))
-        truth = float(measured.loc[key])
-        rows.append({
-            "capacity": fit.setting.capacity, "regularization": fit.setting.regularization,
-            "capacity_index": key[0], "regularization_index": key[1],
-            "family": fit.family, "largest_fitted_size": int(fit.sizes[-1]),
-            "full_size": int(full), "predicted": predicted, "low": float(low),
-            "high": float(high), "measured": truth,
-            "abs_error": abs(predicted - truth),
-            "rel_error": abs(predicted - truth) / truth if truth > 0 else None,
-            "inside_band": bool(low <= truth <= high)})
+    rows, unfitted, calibrations = [], [], {}
+    for index, name in enumerate(whole.names):
+        cells = api.open_run(run_dir, model=index).cells()
+        ok = cells[cells.status == "ok"]
+        fits = fit_grid(ok[ok.train_size < full], n_boot=n_boot, seed=seed)
+        measured = ok[ok.train_size == full].groupby(
+            ["capacity_index", "regularization_index"]).validation_error.mean()
+        for key, fit in sorted(fits.items()):
+            if key not in measured.index:
+                continue
+            low, high = fit.band(float(full), config.confidence)
+            predicted = float(fit.predict(float(full)))
+            truth = float(measured.loc[key])
+            rows.append({
+                "model": name, "capacity": fit.setting.capacity,
+                "regularization": fit.setting.regularization,
+                "capacity_index": key[0], "regularization_index": key[1],
+                "family": fit.family, "largest_fitted_size": int(fit.sizes[-1]),
+                "full_size": int(full), "predicted": predicted, "low": float(low),
+                "high": float(high), "measured": truth,
+                "abs_error": abs(predicted - truth),
+                "rel_error": abs(predicted - truth) / truth if truth > 0 else None,
+                "inside_band": bool(low <= truth <= high)})
+        unfitted += [dict(u, model=name) for u in fits.unfitted]
+        calibrations[name] = fits.calibration.as_dict() if fits.calibration is not None else None
     if not rows:
         raise GridplanError("no setting had enough finished fits for a backtest.")
     rel = [r["rel_error"] for r in rows if r["rel_error"] is not None]
-    from gridplan.results import Backtest
     return Backtest.from_dict(_plain({
-            "run_dir": str(run_dir), "fraction": fraction, "confidence": config.confidence,
-            "metric": config.metric, "fitted_sizes": [int(s) for s in spec.sizes[:-1]],
-            "full_size": int(full), "rows": rows,
-            "median_abs_rel_error": float(np.median(rel)) if rel else None,
-            "coverage": float(np.mean([r["inside_band"] for r in rows])),
-            "unfitted": list(fits.unfitted),
-            "calibration": fits.calibration.as_dict() if fits.calibration is not None else None}))
+        "run_dir": str(run_dir), "fraction": fraction, "confidence": config.confidence,
+        "metric": config.metric, "fitted_sizes": [int(s) for s in spec.sizes[:-1]],
+        "full_size": int(full), "rows": rows,
+        "median_abs_rel_error": float(np.median(rel)) if rel else None,
+        "coverage": float(np.mean([r["inside_band"] for r in rows])),
+        "unfitted": unfitted, "calibration": calibrations[whole.names[0]],
+        "models": list(whole.names), "calibrations": calibrations}))
 
 
 def render_backtest(result: dict) -> str:
@@ -97,16 +103,22 @@ def render_backtest(result: dict) -> str:
              f"forecast at {result['full_size']} rows vs measured ({result['metric']})",
              f"{'capacity':>10} {'regularization':>14} {'family':>6} {'predicted':>10} "
              f"{'band':>21} {'measured':>10} {'rel err':>8}  in band"]
+    several = len(result.get("models") or []) > 1
     for r in result["rows"]:
         band = f"[{r['low']:.3g}, {r['high']:.3g}]"
+        if several and (r is result["rows"][0] or r["model"] != previous):
+            lines.append(f"model {r['model']}")
+        previous = r["model"] if several else None
         rel = "-" if r["rel_error"] is None else f"{r['rel_error']:.1%}"
         lines.append(f"{r['capacity']:>10} {r['regularization']:>14} {r['family']:>6} "
                      f"{r['predicted']:>10.3g} {band:>21} {r['measured']:>10.3g} {rel:>8}  "
                      f"{'yes' if r['inside_band'] else 'no'}")
-    if result.get("calibration"):
-        from gridplan.calibration import Calibration
-        lines.append(f"calibration from the fitted sizes: "
-                     f"{Calibration(**result['calibration']).sentence()}")
+    from gridplan.calibration import Calibration
+    for name, calibration in (result.get("calibrations") or {}).items():
+        if calibration:
+            whose = f" of model {name}" if several else ""
+            lines.append(f"calibration from the fitted sizes{whose}: "
+                         f"{Calibration(**calibration).sentence()}")
     median = result["median_abs_rel_error"]
     lines.append(f"median |relative error| {'-' if median is None else f'{median:.1%}'}; "
                  f"measured value inside the {result['confidence']:.0%} band for "

@@ -83,17 +83,20 @@ class Calibration:
                     f"carry the usual shape error ({self.spread:.0%} of each forecast drop and "
                     f"{self.level_spread:.1%} of the forecast per doubling beyond the data)")
         lean = self.lean_fitted or 0.0
-        direction = ("optimistic" if lean > CLEAR_LEAN else "pessimistic" if lean < -CLEAR_LEAN
-                     else "about right")
         text = (f"refitted on their smaller sizes, {self.settings} settings forecast their larger "
                 f"ones with a median error of {self.median_abs_rel_error or 0.0:.1%} "
-                f"({self.optimistic_share or 0.0:.0%} of {self.checks} forecasts too low): this run's "
-                f"curves have been {direction}")
-        if self.lean > 0:
+                f"({self.optimistic_share or 0.0:.0%} of {self.checks} forecasts too low)")
+        if lean > CLEAR_LEAN:
+            text += (f"; the forecast drops fell short by {lean:.0%} (larger drops weigh more): "
+                     f"optimistic")
             text += (f", so forecasts count on only {1 - self.lean:.0%} of the further drop "
-                     f"their curve promises")
-        elif direction == "optimistic":
-            text += f" (too few checks, {self.checks}, to correct forecasts for it)"
+                     f"their curve promises" if self.lean > 0 else
+                     f", but {self.checks} checks are too few to correct forecasts for it")
+        elif lean < -CLEAR_LEAN:
+            text += (f"; the curves fell {-lean:.0%} more than forecast (larger drops weigh "
+                     f"more): pessimistic, left uncorrected")
+        else:
+            text += "; the forecast drops were about right"
         return text + (f"; bands carry {self.spread:.0%} of each forecast drop and "
                        f"{self.level_spread:.1%} of the forecast per doubling beyond the data as "
                        f"shape error")

@@ -31,7 +31,7 @@ import pandas as pd
 from gridplan.advisor import left_with_unlimited_data, mean_meets_but_interval_not
 from gridplan.errors import GridplanError
 from gridplan.metrics import METRIC_LABELS
-from gridplan.wording import plural, sig
+from gridplan.wording import plural, sig, money
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.figure import Figure
@@ -90,7 +90,7 @@ def _num(value: Any, digits: int = 3) -> str:
 
 
 def _money(value: Any) -> str:
-    return "–" if value is None else f"{value:,.2f}"
+    return money(value, missing="–")
 
 
 def _count(value: Any) -> str:

@@ -264,6 +264,7 @@ class CurvesSummary(Record):
 class BacktestRow(Record):
     """One setting's forecast at the full size against its measurement."""
 
+    model: str
     capacity: str
     regularization: str
     capacity_index: int
@@ -294,4 +295,6 @@ class Backtest(Record):
     median_abs_rel_error: float | None
     coverage: float
     unfitted: list[dict]
-    calibration: dict | None
+    calibration: dict | None       # the first model's (the only one for a single [model])
+    models: list[str] = field(default_factory=list)
+    calibrations: dict = field(default_factory=dict)    # model name -> its calibration

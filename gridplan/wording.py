@@ -12,3 +12,10 @@ def sig(value: float, digits: int = 3) -> str:
     """A number to `digits` significant figures, trailing zeros kept: 5.00, 0.0402, 1.44e+04."""
     text = f"{value:#.{digits}g}"
     return text[:-1] if text.endswith(".") else text
+
+
+def money(value: float | None, missing: str = "-") -> str:
+    """A cost in the user's units: whole amounts without decimals (14,440), others with two (2.50)."""
+    if value is None:
+        return missing
+    return f"{value:,.0f}" if float(value).is_integer() else f"{value:,.2f}"

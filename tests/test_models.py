@@ -244,3 +244,18 @@ def test_advice_is_one_typed_object_for_json_text_and_report(runs):
         Advice.from_dict({**data, "extra": 1})
     with pytest.raises(ValueError, match="missing keys \\['plan'\\]"):
         Advice.from_dict({k: v for k, v in data.items() if k != "plan"})
+
+
+def test_backtest_checks_every_model(runs):
+    from gridplan.backtest import backtest, render_backtest
+    folder, _, _ = runs
+    result = backtest(load_config(folder / "both.toml"), fraction=0.25, out=folder / "bt",
+                      jobs=2, n_boot=30)
+    assert result.models == ["smooth", "trees"]
+    assert {r.model for r in result.rows} == {"smooth", "trees"}
+    assert len([r for r in result.rows if r.model == "trees"]) == 8
+    assert set(result.calibrations) == {"smooth", "trees"}
+    inside = np.mean([r.low <= r.measured <= r.high for r in result.rows])
+    assert result.coverage == pytest.approx(inside)
+    text = render_backtest(result)
+    assert "model smooth" in text and "model trees" in text

@@ -22,7 +22,7 @@ from gridplan.config import load_config
 from gridplan.errors import GridplanError
 from gridplan.report import BACKTEST_FILE, REPORT_NAME, read_backtest, write_report
 from gridplan.store import FoldRow, Store
-from gridplan.wording import sig
+from gridplan.wording import sig, money
 
 N_BOOT = 10
 TARGET = 0.3
@@ -191,15 +191,15 @@ def test_verdict_plan_and_actions_equal_the_advisors(report):
     assert doc.text_by_id["headline"].strip() == advice["headline"]      # the same sentence first
     assert advice["verdict_reason"] in doc.text_by_id["diagnosis"]
     assert float(doc.attrs_by_id["plan-total"]["data-value"]) == advice["plan_cost"]
-    assert f"{advice['plan_cost']:,.2f}" in doc.text_by_id["plan-total"]
-    assert f"{advice['plan_cost']:,.2f}" in doc.text_by_id["tile-plan-cost"]
+    assert money(advice["plan_cost"]) in doc.text_by_id["plan-total"]
+    assert money(advice["plan_cost"]) in doc.text_by_id["tile-plan-cost"]
     assert advice["verdict"] in doc.text_by_id["tile-verdict"]
     plan_rows = section_tables(text, "plan")[0]
     assert len(plan_rows) == len(advice["plan"])
     for row, step in zip(plan_rows, advice["plan"]):
         assert row[1] == step["action"]
-        assert row[4] == f"{step['cost']:,.2f}"
-        assert row[5] == f"{step['cumulative_cost']:,.2f}"
+        assert row[4] == money(step["cost"])
+        assert row[5] == money(step["cumulative_cost"])
     action_rows = section_tables(text, "actions")[0]
     assert [r[1] for r in action_rows] == [a["action"] for a in advice["actions"]]
     diagnosis = doc.text_by_id["diagnosis"]
@@ -400,3 +400,10 @@ def test_the_page_template_escapes_every_field_that_is_not_built_markup():
                        glance=Markup("<p>ok</p>"), sections="", footer="")
     assert "&lt;script&gt;x&lt;/script&gt;" in page and "<script>" not in page
     assert "a &amp; b" in page and "<p>ok</p>" in page and "<style>b{}</style>" in page
+
+
+def test_costs_have_decimals_only_when_they_are_not_whole():
+    # common practice, no published source: whole amounts read best without ".00"
+    assert money(14440) == "14,440" and money(250.0) == "250"
+    assert money(2.5) == "2.50" and money(1234.567) == "1,234.57"
+    assert money(None) == "-" and money(None, missing="–") == "–"
