@@ -329,7 +329,7 @@ def _advise_model(run, *, target: float | None, at: str | None, confidence: floa
     cells = run.cells()
     ok = cells[cells["status"] == "ok"]
     if ok.empty:
-        raise GridplanError(f"{run_dir} has no successful cells to advise on.")
+        raise GridplanError(f"{run_dir or 'the grid'} has no successful cells to advise on.")
     capacity_labels = [label for label, _ in run.axes.get("capacity", [])]
     regularization_labels = [label for label, _ in run.axes.get("regularization", [])]
 
@@ -433,7 +433,8 @@ def _advise_model(run, *, target: float | None, at: str | None, confidence: floa
                 "example": str(rows["message"].iloc[0])[:200]}
                for (c, r), rows in failed.groupby(["capacity", "regularization"], sort=False)]
     result = {
-        "run_dir": str(run_dir), "metric": run.meta.get("metric"), "target": target,
+        "run_dir": "in memory" if run_dir is None else str(run_dir),
+        "metric": run.meta.get("metric"), "target": target,
         "confidence": confidence,
         "operating_point": {"model": run.model_name, "capacity": capacity_labels[ci],
                             "regularization": regularization_labels[ri], "size": size,

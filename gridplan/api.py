@@ -230,11 +230,14 @@ def model_index(names: list[str], model: str | int | None, where: str = "model")
                         f"{', '.join(names)}.")
 
 
-def open_run(run_dir: str | Path, model: str | int | None = None) -> Run:
+def open_run(run_dir: str | Path | Run, model: str | int | None = None) -> Run:
     """Open a run folder written by `run` (today's or from another machine).
 
-    `model` names the model table to see (default: the first).
+    `model` names the model table to see (default: the first). A Run (one
+    kept in memory, say) is returned as it is, seen through that model.
     """
+    if isinstance(run_dir, Run):
+        return run_dir if model is None else run_dir.for_model(model)
     run_dir = Path(run_dir)
     check_path_text(run_dir, "run folder")
     with Store.open_existing(run_dir) as store:

@@ -47,6 +47,8 @@ class ModelPlan:
     categorical: tuple[str, ...]
     impute: bool
     seed: int
+    #: An estimator object to clone for every setting (from Python); None: built from the names.
+    prototype: Any = None
 
     def columns(self, capacity_index: int) -> tuple[str, ...]:
         """Feature columns used at a capacity step (all, unless the axis is feature sets)."""
@@ -214,7 +216,12 @@ def _bytes(n: float) -> str:
 
 
 def needs_encoder(plan: ModelPlan) -> bool:
-    """False when the features are all numeric, complete and all used: no encoding step."""
+    """False when the features are all numeric, complete and all used: no encoding step.
+
+    A user's estimator object encodes for itself: it gets the data as given.
+    """
+    if plan.prototype is not None:
+        return False
     return bool(plan.categorical) or plan.impute or plan.feature_sets is not None
 
 
@@ -240,10 +247,25 @@ def make_encoder(plan: ModelPlan, capacity_index: int) -> ColumnTransformer | No
     return ColumnTransformer(parts, sparse_threshold=0.0, verbose_feature_names_out=False)
 
 
+def _from_prototype(plan: ModelPlan, capacity_index: int, params: dict) -> Any:
+    """The user's estimator, cloned and set for one setting; feature sets pick its columns first."""
+    model = clone(plan.prototype)
+    if model.get_params(deep=False).get("random_state", 0) is None:
+        params.setdefault("random_state", plan.seed)      # the run's seed, as for a config
+    model.set_params(**params)
+    if plan.feature_sets is None:
+        return model
+    columns = ColumnTransformer([("keep", "passthrough", list(plan.feature_sets[capacity_index]))],
+                                remainder="drop", verbose_feature_names_out=False)
+    return Pipeline([("columns", columns.set_output(transform="pandas")), ("fit", model)])
+
+
 def build_model(plan: ModelPlan, capacity_index: int, regularization_index: int,
                 *, check: bool = True) -> Pipeline:
     """The plain scikit-learn pipeline for one grid setting."""
     params = plan.setting_params(capacity_index, regularization_index)
+    if plan.prototype is not None:
+        return _from_prototype(plan, capacity_index, params)
     encoder = make_encoder(plan, capacity_index)
     if plan.family in POLY_FAMILIES:
         degree = int(params.pop("degree", 1))

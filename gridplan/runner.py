@@ -69,7 +69,7 @@ class Workload:
 def workload_of(spec: GridSpec) -> Workload:
     """The data and grid a worker needs; a plain float array when no encoding is needed."""
     X = spec.dataset.X
-    if not needs_encoder(spec.plan):
+    if not needs_encoder(spec.plan) and spec.plan.prototype is None:
         X = X.to_numpy(dtype=float)
     return Workload(X=X, y=spec.dataset.y, labels=spec.dataset.labels,
                     plan=spec.plan, folds=spec.folds, sizes=spec.sizes,

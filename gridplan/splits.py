@@ -35,9 +35,15 @@ def make_folds(y: np.ndarray, *, classification: bool, folds: int, repeats: int,
     for k, (train, test) in enumerate(splitter.split(np.zeros(len(y)), y)):
         repeat, fold = divmod(k, folds)
         rng = np.random.default_rng([seed, repeat, fold])
-        order = _stratified_order(y[train], rng) if classification else rng.permutation(len(train))
-        out.append(Fold(repeat=repeat, fold=fold, train=train[order], test=test))
+        out.append(Fold(repeat=repeat, fold=fold, train=train[nested_order(y[train], rng,
+                                                                           classification)],
+                        test=test))
     return out
+
+
+def nested_order(y_train: np.ndarray, rng: np.random.Generator, classification: bool) -> np.ndarray:
+    """The fixed order of a training fold: its first m rows are the subset of size m."""
+    return _stratified_order(y_train, rng) if classification else rng.permutation(len(y_train))
 
 
 def _stratified_order(y_train: np.ndarray, rng: np.random.Generator) -> np.ndarray:

@@ -1,0 +1,156 @@
+"""The notebook face: gridplan.measure with estimator objects and data in memory."""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.linear_model import Ridge
+from sklearn.model_selection import GroupKFold, cross_validate
+from sklearn.pipeline import Pipeline
+from sklearn.preprocessing import PolynomialFeatures, StandardScaler
+from sklearn.tree import DecisionTreeRegressor
+
+import gridplan
+from gridplan import api
+from gridplan.errors import GridplanError
+from gridplan.results import Advice
+from tests.helpers import write_config
+
+
+def _sites(n_sites: int = 30, per_site: int = 20, seed: int = 0):
+    """Rows grouped by site (equal sizes), a smooth response plus a site effect and noise."""
+    rng = np.random.default_rng(seed)
+    n = n_sites * per_site
+    X = pd.DataFrame({"a": rng.uniform(-2, 2, n), "b": rng.uniform(-2, 2, n)})
+    sites = np.repeat(np.arange(n_sites), per_site)
+    effect = rng.normal(0, 0.5, n_sites)[sites]
+    y = 1 + X.a - 0.5 * X.b ** 2 + effect + rng.normal(0, 0.5, n)
+    return X, y.to_numpy(), sites
+
+
+PIPE = Pipeline([("poly", PolynomialFeatures(include_bias=False)), ("scale", StandardScaler()),
+                 ("ridge", Ridge())])
+
+
+@pytest.fixture(scope="module")
+def grouped():
+    X, y, sites = _sites()
+    before = set(os.listdir("."))
+    grid = gridplan.measure(PIPE, X, y, capacity=("poly__degree", [1, 2, 3]),
+                            regularization=("ridge__alpha", [0.01, 1.0, 100.0]),
+                            cv=GroupKFold(5), groups=sites, train_sizes=5, target=0.6)
+    return grid, X, y, sites, before
+
+
+def test_full_size_cells_equal_cross_validate_on_the_same_group_splits(grouped):
+    # Reference: scikit-learn's cross_validate on the same GroupKFold splits. Equal
+    # groups give equal training folds, so the largest size is each whole fold.
+    grid, X, y, sites, _ = grouped
+    cells = grid.cells
+    full = cells.train_size.max()
+    assert full == 480
+    for degree in (1, 2, 3):
+        for alpha in (0.01, 1.0, 100.0):
+            model = PIPE.set_params(poly__degree=degree, ridge__alpha=alpha)
+            ref = cross_validate(model, X, y, groups=sites, cv=GroupKFold(5),
+                                 scoring="neg_mean_squared_error", return_train_score=True)
+            mine = cells[(cells.capacity == degree) & (cells.regularization == alpha)
+                         & (cells.train_size == full)].sort_values("fold")
+            np.testing.assert_allclose(mine.validation_error, -ref["test_score"], rtol=1e-9)
+            np.testing.assert_allclose(mine.train_error, -ref["train_score"], rtol=1e-9)
+
+
+def test_grouped_folds_never_share_a_group_and_subsets_are_nested(grouped):
+    grid, X, y, sites, _ = grouped
+    from gridplan.grid import _folds
+    folds = _folds(GroupKFold(5), X, y, sites, "regression", 1, 0)
+    for fold in folds:
+        assert not set(sites[fold.train]) & set(sites[fold.test])
+        for small, large in zip((10, 50, 200), (50, 200, 480)):
+            assert set(fold.train[:small]) <= set(fold.train[:large])
+
+
+def test_an_in_memory_grid_writes_no_files_and_advises(grouped, tmp_path):
+    grid, _, _, _, before = grouped
+    assert set(os.listdir(".")) == before
+    assert grid.run.run_dir is None
+    advice = grid.advise()
+    assert isinstance(advice, Advice) and advice.run_dir == "in memory"
+    assert advice.target == 0.6 and advice.operating_point.model == "Pipeline"
+    assert list(advice.to_dict()) == Advice.json_keys()
+    assert grid.cells.capacity.dtype.kind in "if"           # numbers, not labels
+    assert "gridplan grid" in grid._repr_html_()
+    summary = grid.curves()
+    assert len(summary.settings) == 9 and summary.model == "Pipeline"
+    figure = grid.heatmap()
+    assert figure.axes
+
+
+def test_config_path_and_api_path_give_identical_tables(tmp_path):
+    # The same estimator named in a config and handed over as an object.
+    X, y, _ = _sites(20, 15, seed=4)
+    frame = X.assign(y=y)
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    config = write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y"},
+        "model": {"estimator": "sklearn.tree.DecisionTreeRegressor",
+                  "capacity": {"param": "max_depth", "values": [2, 4]},
+                  "regularization": {"param": "min_samples_leaf", "values": [1, 5]}},
+        "sizes": {"count": 4}, "resampling": {"folds": 4, "seed": 2}})
+    run_dir = api.run(str(config), out=tmp_path / "run", jobs=1)
+    from_config = api.open_run(run_dir).cells()
+    grid = gridplan.measure(DecisionTreeRegressor(), X, y, capacity=("max_depth", [2, 4]),
+                            regularization=("min_samples_leaf", [1, 5]), cv=4, seed=2,
+                            train_sizes=4)
+    from_api = grid.run.cells()
+    assert len(from_config) == 2 * 2 * 4 * 4 and (from_config.status == "ok").all()
+    keep = ["model", "capacity", "regularization", "train_size", "repeat", "fold",
+            "train_error", "validation_error", "status"]
+    pd.testing.assert_frame_equal(from_config[keep].reset_index(drop=True),
+                                  from_api[keep].reset_index(drop=True))
+
+
+def test_a_store_path_gives_a_resumable_run_folder(tmp_path):
+    X, y, sites = _sites(10, 12)
+    grid = gridplan.measure(PIPE, X, y, capacity=("poly__degree", [1, 2]), cv=3, train_sizes=3,
+                            store=tmp_path / "kept")
+    assert (tmp_path / "kept" / "store.sqlite").is_file()
+    again = gridplan.open_grid(tmp_path / "kept")
+    pd.testing.assert_frame_equal(again.cells, grid.cells)
+
+
+@pytest.mark.parametrize("kwargs, message", [
+    ({"capacity": ("degree", [1, 2])}, "capacity parameter 'degree' is not a parameter of "
+                                       "Pipeline (did you mean 'poly__degree'?)"),
+    ({"capacity": ("poly__degree", [])}, "capacity 'poly__degree' has no values"),
+    ({"capacity": "poly__degree"}, "capacity must be (parameter name, values)"),
+    ({"capacity": ("poly__degree", [1]), "cv": 1}, "cv must be at least 2 folds"),
+    ({"capacity": ("poly__degree", [1]), "groups": [1, 2]}, "groups must give one group per row"),
+    ({"capacity": ("poly__degree", [1]), "metric": "error_rate"}, "does not fit a regression task"),
+    ({"capacity": ("poly__degree", [1]), "costs": {"per_row": 1}}, "costs has unknown key 'per_row'"),
+])
+def test_bad_arguments_get_one_sentence(kwargs, message):
+    X, y, _ = _sites(10, 10)
+    with pytest.raises(GridplanError) as caught:
+        gridplan.measure(PIPE, X, y, **kwargs)
+    assert message in str(caught.value)
+
+
+def test_y_must_match_x():
+    X, y, _ = _sites(10, 10)
+    with pytest.raises(GridplanError, match="X has 100 rows, y has shape"):
+        gridplan.measure(PIPE, X, y[:50], capacity=("poly__degree", [1]))
+
+
+def test_public_names_load_lazily():
+    import subprocess
+    import sys
+    out = subprocess.run([sys.executable, "-c", "import sys, gridplan; "
+                          "print('sklearn' in sys.modules, 'pandas' in sys.modules); "
+                          "print(gridplan.measure.__module__, sorted(gridplan.__all__))"],
+                         capture_output=True, text=True, check=True).stdout.split("\n")
+    assert out[0] == "False False"
+    assert out[1].startswith("gridplan.grid")
