@@ -340,10 +340,12 @@ def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0,
                model: str | int | None = None):
     """Fit a learning curve per setting of a run's model (see gridplan.curves.fit_grid)."""
     from gridplan.curvestore import cached_curves
-    cells = open_run(run_dir, model=model).cells()
+    run = open_run(run_dir, model=model)
+    cells = run.cells()
     if cells.empty:
-        raise GridplanError(f"{run_dir} holds no finished fits yet; run the grid first.")
-    return cached_curves(run_dir, cells, n_boot=n_boot, seed=seed)
+        raise GridplanError(f"{run.run_dir or 'the grid'} holds no finished fits yet; run the "
+                            f"grid first.")
+    return cached_curves(run.run_dir, cells, n_boot=n_boot, seed=seed)
 
 
 def curves_report(run_dir: str | Path, *, target: float | None = None,

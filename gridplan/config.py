@@ -16,7 +16,7 @@ from typing import Any
 
 from gridplan.checks import check_regular_file
 from gridplan.errors import GridplanError
-from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS
+from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
 
 FAMILIES = ("poly-ridge", "tree")
 TASKS = ("regression", "classification")
@@ -462,9 +462,11 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
 
     metric = goal.get("metric", "str", default=DEFAULT_METRIC[task])
     allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
-    if metric not in allowed:
+    if metric not in allowed and (metric in REGRESSION_METRICS + CLASSIFICATION_METRICS
+                                  or not is_scorer(metric)):
         raise GridplanError(f"{goal.where('metric')} {metric!r} does not fit a {task} task; "
-                            f"use one of {', '.join(allowed)}.")
+                            f"use one of {', '.join(allowed)}, or a scikit-learn scorer name "
+                            f"such as \"r2\" or \"roc_auc\".")
     target_error = goal.get("target", "number")
     if target_error is not None and target_error <= 0:
         raise GridplanError(f"{goal.where('target')} must be a positive error, got {target_error:g}.")

@@ -27,7 +27,7 @@ import pandas as pd
 from gridplan.api import Run, open_run
 from gridplan.config import (DEFAULT_METRIC, Axis, Config, Costs, ModelConfig, value_label)
 from gridplan.errors import GridplanError
-from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS
+from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
 
 MEMORY = "in memory"      # what a grid kept in memory gives as its run folder in results
 
@@ -94,6 +94,7 @@ def _task(estimator: Any, y: np.ndarray, task: str | None) -> str:
 def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: Any = None,
             train_sizes: int | Sequence[int] = 8, smallest: int | None = None, cv: Any = 5,
             repeats: int = 1, groups: Any = None, metric: str | None = None,
+            scoring: str | None = None,
             task: str | None = None, target: float | None = None, confidence: float = 0.9,
             costs: Costs | dict | None = None, n_jobs: int | None = None, seed: int = 0,
             store: str | Path | None = None, name: str = "grid") -> "Grid":
@@ -105,7 +106,10 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
     themselves; `cv` a number of folds or a scikit-learn splitter (given
     `groups`, a number means GroupKFold). Training subsets are nested within
     each training fold. `store=None` keeps everything in memory; a folder
-    gives a resumable run folder.
+    gives a resumable run folder. `metric` is one of gridplan's error
+    metrics (mse, rmse, mae, error_rate, log_loss); `scoring`, a scikit-learn
+    scorer name, replaces it: its score becomes an error as 1 - score (r2,
+    accuracy, roc_auc, ...) or minus the score for negated losses (neg_*).
     """
     from gridplan.spec import GridSpec
     from sklearn.base import clone
@@ -120,11 +124,13 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
         raise GridplanError(f"y must be one value per row of X: X has {len(frame):,} rows, y has "
                             f"shape {target_values.shape}.")
     task = _task(estimator, target_values, task)
-    metric = metric or DEFAULT_METRIC[task]
+    metric = scoring or metric or DEFAULT_METRIC[task]
     allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
-    if metric not in allowed:
+    if metric not in allowed and (metric in REGRESSION_METRICS + CLASSIFICATION_METRICS
+                                  or not is_scorer(metric)):
         raise GridplanError(f"metric {metric!r} does not fit a {task} task; use one of "
-                            f"{', '.join(allowed)}.")
+                            f"{', '.join(allowed)}, or a scikit-learn scorer name such as "
+                            f"'r2' or 'roc_auc'.")
     labels = np.unique(target_values) if task == "classification" else None
     if task == "regression":
         target_values = target_values.astype(float)
@@ -314,6 +320,19 @@ class Grid:
         return small_multiples_figure(self.run, self._fits(),
                                       target=target if target is not None else
                                       self._config_value("target_error"))
+
+    def report(self, path: str | Path, *, target: float | None = None,
+               confidence: float | None = None) -> Path:
+        """Write the one-file HTML report of this grid to `path`; returns the path."""
+        from gridplan.report import gather_inputs, write_inputs
+        path = Path(path)
+        if self.run.run_dir is not None:
+            from gridplan.api import refuse_run_file
+            refuse_run_file(self.run.run_dir, path, self.run.run_dir / "report.html")
+        if path.is_dir():
+            raise GridplanError(f"cannot write the report to {path}: it is a folder; give a file "
+                                f"name such as {path / 'report.html'}.")
+        return write_inputs(gather_inputs(self.run, target=target, confidence=confidence), path)
 
     def _fits(self):
         if self._curves is None:

@@ -17,6 +17,45 @@ METRIC_LABELS = {
 }
 
 
+#: scikit-learn scorers whose score is a negated loss without the "neg_" prefix.
+NEGATED_LOSSES = frozenset({"max_error"})
+
+
+def is_scorer(metric: str) -> bool:
+    """True when `metric` is a scikit-learn scorer name rather than a built-in metric."""
+    if metric in ALL_METRICS:
+        return False
+    from sklearn.metrics import get_scorer_names
+    return metric in get_scorer_names()
+
+
+def scorer_rule(metric: str) -> str:
+    """How a scorer's score (higher is better) becomes an error (lower is better), in words."""
+    if metric.startswith("neg_") or metric in NEGATED_LOSSES:
+        return f"-{metric}" if metric in NEGATED_LOSSES else metric.removeprefix("neg_")
+    return f"1 - {metric}"
+
+
+def metric_label(metric: str | None) -> str:
+    """The metric in words: 'mean squared error', or a scorer's rule ('1 - r2')."""
+    if metric is None:
+        return "error"
+    return METRIC_LABELS.get(metric) or scorer_rule(metric)
+
+
+def scorer_error(metric: str, estimator, X, y) -> float:
+    """A fitted estimator's error by a scikit-learn scorer: minus a negated loss, else 1 - score.
+
+    Scores that are best at 1 (r2, accuracy, roc_auc, f1, ...) become 1 - score;
+    scikit-learn's negated losses (neg_*, max_error) become the loss itself.
+    """
+    from sklearn.metrics import get_scorer
+    score = float(get_scorer(metric)(estimator, X, y))
+    if metric.startswith("neg_") or metric in NEGATED_LOSSES:
+        return -score
+    return 1.0 - score
+
+
 def metrics_for_task(task: str) -> tuple[str, ...]:
     """The metric names that make sense for a task."""
     return REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS

@@ -30,7 +30,7 @@ import pandas as pd
 
 from gridplan.advisor import left_with_unlimited_data, mean_meets_but_interval_not
 from gridplan.errors import GridplanError
-from gridplan.metrics import METRIC_LABELS
+from gridplan.metrics import METRIC_LABELS, metric_label
 from gridplan.wording import plural, sig, money
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
@@ -167,6 +167,8 @@ def _check_confidence(confidence: float) -> float:
 
 def read_backtest(run_dir: str | Path) -> tuple[dict | None, str | None]:
     """The backtest stored in RUN_DIR/backtest.json: (result, None), (None, why unusable) or (None, None)."""
+    if run_dir is None:            # a grid kept in memory has no stored backtest
+        return None, None
     path = Path(run_dir) / BACKTEST_FILE
     if not path.is_file():
         return None, None
@@ -251,7 +253,7 @@ def gather_inputs(run_dir: str | Path, *, target: float | None = None,
     summary = curves_summary(fits, target=target, confidence=confidence)
     if target is not None and not several:
         ask(fits)
-    backtest, backtest_note = read_backtest(run_dir)
+    backtest, backtest_note = read_backtest(run.run_dir)
     return ReportInputs(run=run, cells=cells, fits=fits, summary=summary, target=target,
                         confidence=confidence, advice=advice, advice_note=note,
                         backtest=backtest, backtest_note=backtest_note, n_boot=n_boot, seed=seed)
@@ -323,11 +325,15 @@ def _labels(run: "Run", axis: str) -> list[str]:
 def _metric_words(run: "Run") -> str:
     metric = run.meta.get("metric") or "error"
     label = METRIC_LABELS.get(metric)
-    return f"{label} ({metric})" if label else str(metric)
+    if label:
+        return f"{label} ({metric})"
+    return f"{metric_label(metric)} (the scikit-learn scorer {metric} as an error, lower is better)"
 
 
 def _run_name(run: "Run") -> str:
-    return run.config.name if run.config is not None else Path(run.run_dir).resolve().name
+    if run.config is not None:
+        return run.config.name
+    return "grid in memory" if run.run_dir is None else Path(run.run_dir).resolve().name
 
 
 def _best_measured(cells: pd.DataFrame) -> tuple[int, int]:
@@ -489,7 +495,7 @@ def _job_section(inputs: ReportInputs, number: int) -> Markup:
     if len(paths):
         fits += " (" + ", ".join(f"{p}: {n:,}" for p, n in paths.items()) + ")"
     pairs = [
-        ("Run folder", str(run.run_dir)),
+        ("Run folder", str(run.run_dir or "none: the grid is kept in memory")),
         ("Config file", meta.get("config_name", "?")),
         ("Data file", f"{meta.get('data_path', '?')} ({_count(meta.get('n_rows'))} rows)"),
         ("Target column", meta.get("target_column", "?")),
@@ -925,7 +931,7 @@ def _cautions_section(inputs: ReportInputs, number: int) -> Markup:
 def _footer(inputs: ReportInputs) -> Markup:
     from gridplan import __version__
     return Markup(f"<footer><p>Written by gridplan {esc(__version__)} on "
-                  f"{esc(inputs.written.strftime('%Y-%m-%d %H:%M'))} UTC from {esc(inputs.run.run_dir)}. "
+                  f"{esc(inputs.written.strftime('%Y-%m-%d %H:%M'))} UTC from {esc(inputs.run.run_dir or 'a grid in memory')}. "
                   f"Curves: {esc(inputs.n_boot)} bootstrap resamples, seed {esc(inputs.seed)}. "
                   f"This file is self-contained: it needs no network and no scripts.</p></footer>")
 

@@ -249,6 +249,9 @@ def run_task(task: Task, work: Workload) -> list[FoldRow]:
 
 def _errors(model, work: Workload, X_fit, y_fit, X_val, y_val) -> tuple[float, float]:
     """Training error on the fitted rows and validation error on the held-out rows."""
+    if work.metric not in metrics.ALL_METRICS:          # a scikit-learn scorer
+        return (metrics.scorer_error(work.metric, model, X_fit, y_fit),
+                metrics.scorer_error(work.metric, model, X_val, y_val))
     if metrics.needs_proba(work.metric):
         p_fit = metrics.proba_for_labels(model, X_fit, work.labels)
         p_val = metrics.proba_for_labels(model, X_val, work.labels)

@@ -33,7 +33,7 @@ import numpy as np
 import pandas as pd
 
 from gridplan.errors import GridplanError
-from gridplan.metrics import METRIC_LABELS
+from gridplan.metrics import METRIC_LABELS, metric_label
 from gridplan.wording import plural
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
@@ -118,7 +118,7 @@ def _sizes(run: "Run") -> list[int]:
 
 def _metric_name(run: "Run") -> str:
     metric = run.meta.get("metric", "")
-    return METRIC_LABELS.get(metric, metric or "error")
+    return metric_label(metric)
 
 
 def _axis_title(run: "Run", axis: str) -> str:

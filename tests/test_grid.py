@@ -154,3 +154,46 @@ def test_public_names_load_lazily():
                          capture_output=True, text=True, check=True).stdout.split("\n")
     assert out[0] == "False False"
     assert out[1].startswith("gridplan.grid")
+
+
+def test_a_scorer_error_equals_the_scorers_own_value(grouped):
+    # Reference: scikit-learn's own scorer through cross_validate; gridplan's error is
+    # 1 - r2 (r2 is best at 1) and, for a negated loss, the loss itself.
+    _, X, y, sites, _ = grouped
+    for scoring, to_error in (("r2", lambda s: 1 - s), ("neg_mean_absolute_error", lambda s: -s)):
+        grid = gridplan.measure(PIPE, X, y, capacity=("poly__degree", [2]),
+                                regularization=("ridge__alpha", [1.0]), cv=GroupKFold(5),
+                                groups=sites, train_sizes=[100, 480], scoring=scoring)
+        cells = grid.cells
+        full = cells[cells.train_size == 480].sort_values("fold")
+        ref = cross_validate(PIPE.set_params(poly__degree=2, ridge__alpha=1.0), X, y,
+                             groups=sites, cv=GroupKFold(5), scoring=scoring,
+                             return_train_score=True)
+        np.testing.assert_allclose(full.validation_error, to_error(ref["test_score"]), rtol=1e-9)
+        np.testing.assert_allclose(full.train_error, to_error(ref["train_score"]), rtol=1e-9)
+    from gridplan.metrics import metric_label
+    assert metric_label("r2") == "1 - r2" and metric_label("neg_mean_absolute_error") == \
+        "mean_absolute_error"
+
+
+def test_a_scorer_in_a_config_is_accepted_and_a_wrong_name_refused(tmp_path):
+    X, y, _ = _sites(10, 12)
+    X.assign(y=y).to_csv(tmp_path / "data.csv", index=False)
+    sections = {"data": {"path": "data.csv", "target": "y"},
+                "model": {"family": "poly-ridge", "capacity": {"values": [1, 2]}},
+                "sizes": {"count": 3}, "goal": {"metric": "r2"}}
+    config = api.load_config(write_config(tmp_path, sections))
+    cells = api.open_run(api.run(config, out=tmp_path / "run", jobs=1)).cells()
+    assert (cells.path == "plain").all()       # no shortcut computes a scorer: plain fits
+    assert (cells.validation_error > 0).all()
+    sections["goal"] = {"metric": "r3"}
+    with pytest.raises(GridplanError, match="'r3' does not fit a regression task; use one of "
+                                            "mse, rmse, mae, or a scikit-learn scorer name"):
+        api.load_config(write_config(tmp_path, sections, "bad.toml"))
+
+
+def test_an_in_memory_grid_writes_its_report(grouped, tmp_path):
+    grid = grouped[0]
+    path = grid.report(tmp_path / "grid.html")
+    text = path.read_text(encoding="utf-8")
+    assert grid.advise().headline in text and "kept in memory" in text
