@@ -28,7 +28,8 @@ SCHEMA: dict[str, dict[str, str]] = {
     "model": {"name": "str", "family": "str", "estimator": "str", "params": "table",
               "capacity": "table", "regularization": "table"},
     "sizes": {"values": "list", "count": "int", "smallest": "int"},
-    "resampling": {"folds": "int", "repeats": "int", "seed": "int"},
+    "resampling": {"folds": "int", "repeats": "int", "seed": "int", "groups": "str",
+                   "time": "str"},
     "goal": {"metric": "str", "target": "number", "confidence": "number"},
     "costs": {"per_sample": "number", "capacity_step": "number",
               "regularization_step": "number", "max_samples": "int",
@@ -156,6 +157,10 @@ class Config:
     fast_path: bool = True
     thresholds: dict[str, float] = field(default_factory=dict)
     max_fits: int = DEFAULT_MAX_FITS
+    #: Columns that set the resampling: rows of one group never split across
+    #: training and validation; or forward-in-time splits by this column.
+    groups_column: str | None = None
+    time_column: str | None = None
     #: Every model table, in config order; the fields family ... regularization
     #: above are the first one's (a single [model] table has one entry).
     models: tuple[ModelConfig, ...] = ()
@@ -455,6 +460,20 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     repeats = resampling.get("repeats", "int", default=1)
     if repeats < 1:
         raise GridplanError(f"{resampling.where('repeats')} must be at least 1, got {repeats}.")
+    groups_column = resampling.get("groups", "str")
+    time_column = resampling.get("time", "str")
+    if groups_column is not None and time_column is not None:
+        raise GridplanError(f"{resampling.where('groups')} and time cannot both be set; choose "
+                            f"grouped or forward-in-time splits.")
+    for key, column in (("groups", groups_column), ("time", time_column)):
+        if column is not None and column == target:
+            raise GridplanError(f"{resampling.where(key)} names the target column {target!r}.")
+        if column is not None and features is not None and column in features:
+            raise GridplanError(f"{resampling.where(key)} {column!r} is also listed in [data] "
+                                f"features; a resampling column is not a feature.")
+    if time_column is not None and repeats != 1:
+        raise GridplanError(f"{resampling.where('repeats')} must be 1 with time = "
+                            f"{time_column!r}: forward-in-time splits have one order only.")
     seed = resampling.get("seed", "int", default=0)
     if not SEED_RANGE[0] <= seed <= SEED_RANGE[1]:
         raise GridplanError(f"{resampling.where('seed')} must lie between {SEED_RANGE[0]} and "
@@ -514,7 +533,7 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         target_error=target_error, confidence=confidence, costs=cost_obj, jobs=jobs,
         scheduler=scheduler, fit_time_limit=limit, name=name, max_fits=max_fits,
         fast_path=run.get("fast_path", "bool", default=True), thresholds=thresholds,
-        models=models)
+        models=models, groups_column=groups_column, time_column=time_column)
 
 
 def _read_models(path: Path, raw: Any) -> tuple[ModelConfig, ...]:

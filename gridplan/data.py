@@ -27,6 +27,8 @@ class Dataset:
     labels: np.ndarray | None      # sorted classes for classification
     fingerprint: str               # sha256 of the file's bytes
     warnings: tuple[str, ...] = ()
+    groups: np.ndarray | None = None   # [resampling] groups column, per row
+    time: np.ndarray | None = None     # [resampling] time column, per row
 
     @property
     def n_rows(self) -> int:
@@ -88,6 +90,17 @@ def load_dataset(config: Config) -> Dataset:
     if config.target not in frame.columns:
         raise GridplanError(f"{name} has no target column {config.target!r}; columns are "
                             f"{', '.join(frame.columns[:12])}{' ...' if frame.shape[1] > 12 else ''}.")
+    resampling = {}
+    for key, column in (("groups", config.groups_column), ("time", config.time_column)):
+        if column is None:
+            continue
+        if column not in frame.columns:
+            raise GridplanError(f"{name} has no column {column!r} named in [resampling] {key}.")
+        if frame[column].isna().any():
+            raise GridplanError(f"{name}: the [resampling] {key} column {column!r} has "
+                                f"{int(frame[column].isna().sum())} missing values.")
+        resampling[key] = frame[column].to_numpy()
+        frame = frame.drop(columns=[column])      # it sets the splits; it is no feature
     wanted = _feature_columns(config, frame)
     y_raw = frame[config.target]
     if y_raw.isna().all():
@@ -145,7 +158,8 @@ def load_dataset(config: Config) -> Dataset:
             raise GridplanError(f"{name}: class {lab!r} of {config.target!r} has only {n} rows, "
                                 f"fewer than the {config.folds} folds.")
     return Dataset(X=X, y=y, numeric=numeric, categorical=categorical, labels=labels,
-                   fingerprint=file_fingerprint(path), warnings=tuple(notes))
+                   fingerprint=file_fingerprint(path), warnings=tuple(notes),
+                   groups=resampling.get("groups"), time=resampling.get("time"))
 
 
 def _feature_columns(config: Config, frame: pd.DataFrame) -> tuple[str, ...]:

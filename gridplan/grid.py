@@ -93,7 +93,7 @@ def _task(estimator: Any, y: np.ndarray, task: str | None) -> str:
 
 def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: Any = None,
             train_sizes: int | Sequence[int] = 8, smallest: int | None = None, cv: Any = 5,
-            repeats: int = 1, groups: Any = None, metric: str | None = None,
+            repeats: int = 1, groups: Any = None, time: Any = None, metric: str | None = None,
             scoring: str | None = None,
             task: str | None = None, target: float | None = None, confidence: float = 0.9,
             costs: Costs | dict | None = None, n_jobs: int | None = None, seed: int = 0,
@@ -103,9 +103,11 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
     `capacity` and `regularization` are (parameter name, values) of the
     estimator (`capacity` may instead be a list of nested feature sets);
     `train_sizes` a count of sizes on a geometric ladder or the sizes
-    themselves; `cv` a number of folds or a scikit-learn splitter (given
-    `groups`, a number means GroupKFold). Training subsets are nested within
-    each training fold. `store=None` keeps everything in memory; a folder
+    themselves; `cv` a number of folds or a scikit-learn splitter. With
+    `groups` (one label per row) a number of folds means grouped K-fold; with
+    `time` (one value per row) forward-in-time splits, each validation block
+    trained on the most recent rows before it. Training subsets are nested
+    within each training fold. `store=None` keeps everything in memory; a folder
     gives a resumable run folder. `metric` is one of gridplan's error
     metrics (mse, rmse, mae, error_rate, log_loss); `scoring`, a scikit-learn
     scorer name, replaces it: its score becomes an error as 1 - score (r2,
@@ -140,7 +142,7 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
                         capacity=cap, regularization=reg)
     config = _config(model, metric=metric, task=task, target=target, confidence=confidence,
                      costs=costs, seed=seed, repeats=repeats, name=name)
-    folds = _folds(cv, frame, target_values, groups, task, repeats, seed)
+    folds = _folds(cv, frame, target_values, groups, task, repeats, seed, time)
     sizes = _sizes(folds, train_sizes, smallest, labels)
     numeric = tuple(c for c in frame.columns if pd.api.types.is_numeric_dtype(frame[c]))
     categorical = tuple(c for c in frame.columns if c not in numeric)
@@ -189,26 +191,36 @@ def _config(model: ModelConfig, *, metric: str, task: str, target: float | None,
 
 
 def _folds(cv: Any, X: pd.DataFrame, y: np.ndarray, groups: Any, task: str, repeats: int,
-           seed: int):
-    """Folds from a count or a splitter; training rows in a fixed random order (nested subsets)."""
+           seed: int, time: Any = None):
+    """Folds from a count (plain, grouped or forward in time: as a config gets them) or a splitter.
+
+    Training rows are in a fixed order, so the subsets of a fold are nested.
+    """
     from gridplan.splits import Fold, make_folds, nested_order
-    if groups is not None:
-        groups = np.asarray(groups)
-        if len(groups) != len(X):
-            raise GridplanError(f"groups must give one group per row: X has {len(X):,} rows, "
-                                f"groups {len(groups):,}.")
+    per_row = {}
+    for name, values in (("groups", groups), ("time", time)):
+        if values is None:
+            continue
+        values = np.asarray(values)
+        if values.ndim != 1 or len(values) != len(X):
+            raise GridplanError(f"{name} must give one value per row: X has {len(X):,} rows, "
+                                f"{name} has shape {values.shape}.")
+        per_row[name] = values
+    if "groups" in per_row and "time" in per_row:
+        raise GridplanError("groups and time cannot both be given; choose grouped or "
+                            "forward-in-time splits.")
     if isinstance(cv, int) and not isinstance(cv, bool):
         if cv < 2:
             raise GridplanError(f"cv must be at least 2 folds, got {cv}.")
-        if groups is None:
-            return make_folds(y, classification=task == "classification", folds=cv,
-                              repeats=repeats, seed=seed)
-        from sklearn.model_selection import GroupKFold, StratifiedGroupKFold
-        cv = StratifiedGroupKFold(cv) if task == "classification" else GroupKFold(cv)
+        return make_folds(y, classification=task == "classification", folds=cv,
+                          repeats=repeats, seed=seed, **per_row)
+    if "time" in per_row:
+        raise GridplanError("time sets forward-in-time splits itself; give cv as a number of "
+                            "folds, not a splitter.")
     if not hasattr(cv, "split"):
         raise GridplanError(f"cv must be a number of folds or a scikit-learn splitter, got {cv!r}.")
     out = []
-    for k, (train, test) in enumerate(cv.split(X, y, groups)):
+    for k, (train, test) in enumerate(cv.split(X, y, per_row.get("groups"))):
         rng = np.random.default_rng([seed, 0, k])
         order = nested_order(y[train], rng, task == "classification")
         out.append(Fold(repeat=0, fold=k, train=np.asarray(train)[order], test=np.asarray(test)))

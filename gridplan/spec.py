@@ -53,7 +53,9 @@ class GridSpec:
                       "capacity": _axis_identity(c.capacity),
                       "regularization": _axis_identity(c.regularization)},
             "sizes": list(self.sizes),
-            "resampling": {"folds": c.folds, "repeats": c.repeats, "seed": c.seed},
+            "resampling": {"folds": c.folds, "repeats": c.repeats, "seed": c.seed,
+                           **({"groups": c.groups_column} if c.groups_column else {}),
+                           **({"time": c.time_column} if c.time_column else {})},
             "metric": c.metric,
         }
 
@@ -156,7 +158,8 @@ def resolve(config: Config, *, allow_any_import: bool = False) -> GridSpec:
         raise GridplanError(f"{config.data_path.name} has {dataset.n_rows} rows, too few for "
                             f"{config.folds} folds (need at least {2 * config.folds}).")
     folds = make_folds(dataset.y, classification=classification, folds=config.folds,
-                       repeats=config.repeats, seed=config.seed)
+                       repeats=config.repeats, seed=config.seed, groups=dataset.groups,
+                       time=dataset.time)
     full = smallest_training_fold(folds)
     sizes = size_ladder(full, values=config.size_values, count=config.size_count,
                         smallest=config.smallest_size, where=f"{config.source.name}: [sizes]")

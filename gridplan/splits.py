@@ -27,8 +27,19 @@ class Fold:
 
 
 def make_folds(y: np.ndarray, *, classification: bool, folds: int, repeats: int,
-               seed: int) -> list[Fold]:
-    """K folds x R repeats, stratified for classification, identical for a given seed."""
+               seed: int, groups: np.ndarray | None = None,
+               time: np.ndarray | None = None) -> list[Fold]:
+    """K folds x R repeats, stratified for classification, identical for a given seed.
+
+    With `groups`, no group is split across training and validation rows
+    (grouped K-fold, stratified for classification; repeats shuffle the
+    groups). With `time`, forward-in-time splits (see `time_folds`).
+    """
+    if time is not None:
+        return time_folds(time, folds=folds, repeats=repeats)
+    if groups is not None:
+        return grouped_folds(y, groups, classification=classification, folds=folds,
+                             repeats=repeats, seed=seed)
     splitter_cls = RepeatedStratifiedKFold if classification else RepeatedKFold
     splitter = splitter_cls(n_splits=folds, n_repeats=repeats, random_state=seed)
     out = []
@@ -38,6 +49,45 @@ def make_folds(y: np.ndarray, *, classification: bool, folds: int, repeats: int,
         out.append(Fold(repeat=repeat, fold=fold, train=train[nested_order(y[train], rng,
                                                                            classification)],
                         test=test))
+    return out
+
+
+def grouped_folds(y: np.ndarray, groups: np.ndarray, *, classification: bool, folds: int,
+                  repeats: int, seed: int) -> list[Fold]:
+    """Grouped K-fold (stratified for classification), each repeat with its own shuffle of groups."""
+    from sklearn.model_selection import GroupKFold, StratifiedGroupKFold
+    n_groups = len(np.unique(groups))
+    if n_groups < folds:
+        raise GridplanError(f"grouped resampling needs at least as many groups as folds: "
+                            f"{n_groups} groups for {folds} folds.")
+    out = []
+    for repeat in range(repeats):
+        kind = StratifiedGroupKFold if classification else GroupKFold
+        splitter = kind(folds, shuffle=True, random_state=seed + repeat)
+        for fold, (train, test) in enumerate(splitter.split(np.zeros(len(y)), y, groups)):
+            rng = np.random.default_rng([seed, repeat, fold])
+            out.append(Fold(repeat=repeat, fold=fold,
+                            train=train[nested_order(y[train], rng, classification)], test=test))
+    return out
+
+
+def time_folds(time: np.ndarray, *, folds: int, repeats: int = 1) -> list[Fold]:
+    """Forward-in-time splits: K validation blocks in time order, each trained on what came before.
+
+    Rows are ordered by time (ties kept in file order); the data are cut into
+    K + 1 blocks (scikit-learn's TimeSeriesSplit) and block k + 1 is validated
+    on the rows before it. The training rows run from the most recent back,
+    so the subset of size m is the latest m rows before the block: less
+    history, not a random thinning.
+    """
+    from sklearn.model_selection import TimeSeriesSplit
+    if repeats != 1:
+        raise GridplanError(f"forward-in-time splits have one order only; set repeats = 1 "
+                            f"(got {repeats}).")
+    order = np.argsort(np.asarray(time), kind="stable")
+    out = []
+    for fold, (train, test) in enumerate(TimeSeriesSplit(n_splits=folds).split(order)):
+        out.append(Fold(repeat=0, fold=fold, train=order[train][::-1], test=order[test]))
     return out
 
 

@@ -128,7 +128,9 @@ def test_a_store_path_gives_a_resumable_run_folder(tmp_path):
     ({"capacity": ("poly__degree", [])}, "capacity 'poly__degree' has no values"),
     ({"capacity": "poly__degree"}, "capacity must be (parameter name, values)"),
     ({"capacity": ("poly__degree", [1]), "cv": 1}, "cv must be at least 2 folds"),
-    ({"capacity": ("poly__degree", [1]), "groups": [1, 2]}, "groups must give one group per row"),
+    ({"capacity": ("poly__degree", [1]), "groups": [1, 2]}, "groups must give one value per row"),
+    ({"capacity": ("poly__degree", [1]), "time": np.arange(100), "cv": GroupKFold(3)},
+     "time sets forward-in-time splits itself"),
     ({"capacity": ("poly__degree", [1]), "metric": "error_rate"}, "does not fit a regression task"),
     ({"capacity": ("poly__degree", [1]), "costs": {"per_row": 1}}, "costs has unknown key 'per_row'"),
 ])
@@ -197,3 +199,52 @@ def test_an_in_memory_grid_writes_its_report(grouped, tmp_path):
     path = grid.report(tmp_path / "grid.html")
     text = path.read_text(encoding="utf-8")
     assert grid.advise().headline in text and "kept in memory" in text
+
+
+def test_time_ordered_splits_never_train_on_later_rows_and_shrink_history():
+    # Forward-in-time validation (scikit-learn's TimeSeriesSplit blocks): every
+    # training row precedes every validation row; smaller sizes keep the latest rows.
+    rng = np.random.default_rng(5)
+    n = 300
+    day = rng.permutation(n)                      # the file is not in time order
+    X = pd.DataFrame({"a": rng.normal(size=n), "day": day})
+    y = X.a.to_numpy() + 0.01 * day + rng.normal(0, 0.3, n)
+    from gridplan.grid import _folds
+    folds = _folds(4, X, y, None, "regression", 1, 0, time=day)
+    assert len(folds) == 4
+    for fold in folds:
+        assert day[fold.train].max() < day[fold.test].min()
+        for m in (10, 30, 60):
+            assert set(fold.train[:m]) <= set(fold.train[:2 * m])
+            latest = np.sort(day[fold.train])[-m:]
+            assert sorted(day[fold.train[:m]]) == list(latest)    # less history, not thinning
+    grid = gridplan.measure(Ridge(), X, y, capacity=("alpha", [0.1, 10.0]), cv=4, time=day,
+                            train_sizes=3)
+    assert (grid.cells.status == "ok").all()
+    assert grid.cells.train_size.max() == min(len(f.train) for f in folds)
+
+
+def test_config_groups_and_time_columns(tmp_path):
+    # Grouped K-fold from a column: no site on both sides of a split (GroupKFold's contract).
+    X, y, sites = _sites(12, 10)
+    X.assign(y=y, site=sites, day=np.arange(len(y))).to_csv(tmp_path / "data.csv", index=False)
+    base = {"data": {"path": "data.csv", "target": "y", "features": ["a", "b"]},
+            "model": {"family": "poly-ridge", "capacity": {"values": [1, 2]}},
+            "sizes": {"count": 3}}
+    config = api.load_config(write_config(tmp_path, {**base, "resampling": {"groups": "site",
+                                                                            "folds": 4}}))
+    spec = api.check(config)
+    assert spec.dataset.groups is not None and "site" not in spec.dataset.X.columns
+    for fold in spec.folds:
+        assert not set(sites[fold.train]) & set(sites[fold.test])
+    timed = api.load_config(write_config(tmp_path, {**base, "resampling": {"time": "day"}},
+                                         "timed.toml"))
+    for fold in api.check(timed).folds:
+        assert fold.train.max() < fold.test.min()            # day is the row number here
+    for resampling, message in (({"groups": "site", "time": "day"}, "cannot both be set"),
+                                ({"time": "day", "repeats": 2}, "must be 1 with time"),
+                                ({"groups": "nowhere"}, "no column 'nowhere' named in "
+                                                        "[resampling] groups")):
+        with pytest.raises(GridplanError, match=message.replace("[", "\\[").replace("]", "\\]")):
+            api.check(api.load_config(write_config(tmp_path, {**base, "resampling": resampling},
+                                                   "bad.toml")))
