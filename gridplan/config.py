@@ -24,7 +24,7 @@ TASKS = ("regression", "classification")
 # section -> {key: description}; the description is only for messages and docs.
 SCHEMA: dict[str, dict[str, str]] = {
     "data": {"path": "str", "target": "str", "task": "str", "features": "list",
-             "missing": "str"},
+             "missing": "str", "weights": "str"},
     "model": {"name": "str", "family": "str", "estimator": "str", "params": "table",
               "capacity": "table", "regularization": "table"},
     "sizes": {"values": "list", "count": "int", "smallest": "int"},
@@ -161,6 +161,8 @@ class Config:
     #: training and validation; or forward-in-time splits by this column.
     groups_column: str | None = None
     time_column: str | None = None
+    #: A column of per-row weights, passed to every fit and to the errors.
+    weights_column: str | None = None
     #: Every model table, in config order; the fields family ... regularization
     #: above are the first one's (a single [model] table has one entry).
     models: tuple[ModelConfig, ...] = ()
@@ -427,6 +429,11 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         if target in features:
             raise GridplanError(f"{data.where('features')} includes the target column {target!r}.")
         features = tuple(features)
+    weights_column = data.get("weights", "str")
+    if weights_column is not None and (weights_column == target or
+                                       (features is not None and weights_column in features)):
+        raise GridplanError(f"{data.where('weights')} {weights_column!r} is the target or a "
+                            f"feature; weights need a column of their own.")
     missing = data.get("missing", "str", default="refuse")
     if missing not in ("refuse", "impute"):
         raise GridplanError(f"{data.where('missing')} must be \"refuse\" or \"impute\", got {missing!r}.")
@@ -533,7 +540,8 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         target_error=target_error, confidence=confidence, costs=cost_obj, jobs=jobs,
         scheduler=scheduler, fit_time_limit=limit, name=name, max_fits=max_fits,
         fast_path=run.get("fast_path", "bool", default=True), thresholds=thresholds,
-        models=models, groups_column=groups_column, time_column=time_column)
+        models=models, groups_column=groups_column, time_column=time_column,
+        weights_column=weights_column)
 
 
 def _read_models(path: Path, raw: Any) -> tuple[ModelConfig, ...]:

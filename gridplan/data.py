@@ -29,6 +29,7 @@ class Dataset:
     warnings: tuple[str, ...] = ()
     groups: np.ndarray | None = None   # [resampling] groups column, per row
     time: np.ndarray | None = None     # [resampling] time column, per row
+    weights: np.ndarray | None = None  # [data] weights column: per-row weights for fits and errors
 
     @property
     def n_rows(self) -> int:
@@ -91,6 +92,10 @@ def load_dataset(config: Config) -> Dataset:
         raise GridplanError(f"{name} has no target column {config.target!r}; columns are "
                             f"{', '.join(frame.columns[:12])}{' ...' if frame.shape[1] > 12 else ''}.")
     resampling = {}
+    if config.weights_column is not None:
+        weights = _weights(frame, config.weights_column, name)
+        resampling["weights"] = weights
+        frame = frame.drop(columns=[config.weights_column])
     for key, column in (("groups", config.groups_column), ("time", config.time_column)):
         if column is None:
             continue
@@ -159,7 +164,25 @@ def load_dataset(config: Config) -> Dataset:
                                 f"fewer than the {config.folds} folds.")
     return Dataset(X=X, y=y, numeric=numeric, categorical=categorical, labels=labels,
                    fingerprint=file_fingerprint(path), warnings=tuple(notes),
-                   groups=resampling.get("groups"), time=resampling.get("time"))
+                   groups=resampling.get("groups"), time=resampling.get("time"),
+                   weights=resampling.get("weights"))
+
+
+def _weights(frame: pd.DataFrame, column: str, name: str) -> np.ndarray:
+    """The [data] weights column: finite, non-negative numbers, not all zero."""
+    if column not in frame.columns:
+        raise GridplanError(f"{name} has no column {column!r} named in [data] weights.")
+    values = frame[column]
+    if not is_numeric_dtype(values) or values.dtype == bool:
+        raise GridplanError(f"{name}: the weights column {column!r} must hold numbers.")
+    weights = values.to_numpy(dtype=float)
+    bad = int((~np.isfinite(weights) | (weights < 0)).sum())
+    if bad:
+        raise GridplanError(f"{name}: the weights column {column!r} has {bad} missing, "
+                            f"negative or infinite values; weights must be finite and >= 0.")
+    if not weights.any():
+        raise GridplanError(f"{name}: the weights column {column!r} is zero everywhere.")
+    return weights
 
 
 def _feature_columns(config: Config, frame: pd.DataFrame) -> tuple[str, ...]:

@@ -114,6 +114,17 @@ def plan_model(config: Config, dataset: Dataset, *, allow_any_import: bool = Fal
     return plan
 
 
+def check_takes_weights(plan: ModelPlan, where: str) -> None:
+    """Refuse per-row weights for a model whose final estimator cannot take them."""
+    from sklearn.utils.validation import has_fit_parameter
+    final = plan.prototype if plan.prototype is not None else _final_estimator(plan)
+    if hasattr(final, "steps"):
+        final = final.steps[-1][1]
+    if not has_fit_parameter(final, "sample_weight"):
+        raise GridplanError(f"{where}: {type(final).__name__} does not take sample_weight in "
+                            f"fit, so per-row weights cannot be used with it.")
+
+
 def _final_estimator(plan: ModelPlan) -> Any:
     """The last pipeline step with default parameters (nothing from the config)."""
     if plan.estimator_cls is not None:

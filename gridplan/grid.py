@@ -80,6 +80,18 @@ def _fingerprint(X: pd.DataFrame, y: np.ndarray) -> str:
     return digest.hexdigest()
 
 
+def _sample_weight(weights: Any, n_rows: int) -> np.ndarray | None:
+    if weights is None:
+        return None
+    values = np.asarray(weights, dtype=float)
+    if values.ndim != 1 or len(values) != n_rows:
+        raise GridplanError(f"sample_weight must give one weight per row: X has {n_rows:,} rows, "
+                            f"sample_weight has shape {values.shape}.")
+    if not np.isfinite(values).all() or (values < 0).any() or not values.any():
+        raise GridplanError("sample_weight must be finite, non-negative and not all zero.")
+    return values
+
+
 def _task(estimator: Any, y: np.ndarray, task: str | None) -> str:
     if task is not None:
         if task not in ("regression", "classification"):
@@ -94,7 +106,7 @@ def _task(estimator: Any, y: np.ndarray, task: str | None) -> str:
 def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: Any = None,
             train_sizes: int | Sequence[int] = 8, smallest: int | None = None, cv: Any = 5,
             repeats: int = 1, groups: Any = None, time: Any = None, metric: str | None = None,
-            scoring: str | None = None,
+            scoring: str | None = None, sample_weight: Any = None,
             task: str | None = None, target: float | None = None, confidence: float = 0.9,
             costs: Costs | dict | None = None, n_jobs: int | None = None, seed: int = 0,
             store: str | Path | None = None, name: str = "grid") -> "Grid":
@@ -112,6 +124,9 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
     metrics (mse, rmse, mae, error_rate, log_loss); `scoring`, a scikit-learn
     scorer name, replaces it: its score becomes an error as 1 - score (r2,
     accuracy, roc_auc, ...) or minus the score for negated losses (neg_*).
+    `sample_weight` (one weight per row) goes to every fit (a Pipeline's last
+    step) and weights every error. Estimator objects always run plain fits:
+    the exact shortcuts serve the built-in families of a config.
     """
     from gridplan.spec import GridSpec
     from sklearn.base import clone
@@ -148,13 +163,18 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
     categorical = tuple(c for c in frame.columns if c not in numeric)
     from gridplan.data import Dataset
     from gridplan.families import ModelPlan
+    weights = _sample_weight(sample_weight, len(frame))
     dataset = Dataset(X=frame, y=target_values, numeric=numeric, categorical=categorical,
-                      labels=labels, fingerprint=_fingerprint(frame, target_values))
+                      labels=labels, fingerprint=_fingerprint(frame, target_values),
+                      weights=weights)
     plan = ModelPlan(family=None, estimator_cls=type(estimator), task=task, params={},
                      capacity_param=cap.param, capacity_values=cap.values,
                      feature_sets=cap.feature_sets, regularization_param=reg.param,
                      regularization_values=reg.values, numeric=numeric,
                      categorical=categorical, impute=False, seed=seed, prototype=estimator)
+    if weights is not None:
+        from gridplan.families import check_takes_weights
+        check_takes_weights(plan, "sample_weight")
     spec = GridSpec(config=config, dataset=dataset, plan=plan, folds=tuple(folds), sizes=sizes)
     jobs = 1 if n_jobs is None else int(n_jobs)
     if store is None:

@@ -43,14 +43,16 @@ def metric_label(metric: str | None) -> str:
     return METRIC_LABELS.get(metric) or scorer_rule(metric)
 
 
-def scorer_error(metric: str, estimator, X, y) -> float:
+def scorer_error(metric: str, estimator, X, y, sample_weight=None) -> float:
     """A fitted estimator's error by a scikit-learn scorer: minus a negated loss, else 1 - score.
 
     Scores that are best at 1 (r2, accuracy, roc_auc, f1, ...) become 1 - score;
     scikit-learn's negated losses (neg_*, max_error) become the loss itself.
     """
     from sklearn.metrics import get_scorer
-    score = float(get_scorer(metric)(estimator, X, y))
+    scorer = get_scorer(metric)
+    score = float(scorer(estimator, X, y) if sample_weight is None else
+                  scorer(estimator, X, y, sample_weight=sample_weight))
     if metric.startswith("neg_") or metric in NEGATED_LOSSES:
         return -score
     return 1.0 - score
@@ -67,19 +69,20 @@ def needs_proba(metric: str) -> bool:
 
 
 def error_of(metric: str, y_true: np.ndarray, prediction: np.ndarray,
-             labels: np.ndarray | None = None) -> float:
-    """Error of a prediction; for log loss `prediction` holds one column per label."""
+             labels: np.ndarray | None = None, sample_weight: np.ndarray | None = None) -> float:
+    """Error of a prediction (weighted by rows when given); for log loss one column per label."""
     from sklearn import metrics as skm   # imported here: deciding commands never need it
+    w = sample_weight
     if metric == "mse":
-        return float(skm.mean_squared_error(y_true, prediction))
+        return float(skm.mean_squared_error(y_true, prediction, sample_weight=w))
     if metric == "rmse":
-        return float(np.sqrt(skm.mean_squared_error(y_true, prediction)))
+        return float(np.sqrt(skm.mean_squared_error(y_true, prediction, sample_weight=w)))
     if metric == "mae":
-        return float(skm.mean_absolute_error(y_true, prediction))
+        return float(skm.mean_absolute_error(y_true, prediction, sample_weight=w))
     if metric == "error_rate":
-        return float(1.0 - skm.accuracy_score(y_true, prediction))
+        return float(1.0 - skm.accuracy_score(y_true, prediction, sample_weight=w))
     if metric == "log_loss":
-        return float(skm.log_loss(y_true, prediction, labels=labels))
+        return float(skm.log_loss(y_true, prediction, labels=labels, sample_weight=w))
     raise ValueError(f"unknown metric {metric!r}")
 
 

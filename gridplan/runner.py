@@ -64,6 +64,8 @@ class Workload:
     #: Polynomial features of every row of X at the largest degree, built once
     #: for ridge fast-path tasks that share this process (see with_shared_features).
     poly_features: np.ndarray | None = None
+    #: Per-row weights for fits and errors ([data] weights, measure(sample_weight=...)).
+    weights: np.ndarray | None = None
 
 
 def workload_of(spec: GridSpec) -> Workload:
@@ -73,7 +75,8 @@ def workload_of(spec: GridSpec) -> Workload:
         X = X.to_numpy(dtype=float)
     return Workload(X=X, y=spec.dataset.y, labels=spec.dataset.labels,
                     plan=spec.plan, folds=spec.folds, sizes=spec.sizes,
-                    metric=spec.config.metric, fit_time_limit=spec.config.fit_time_limit)
+                    metric=spec.config.metric, fit_time_limit=spec.config.fit_time_limit,
+                    weights=spec.dataset.weights)
 
 
 def fast_path_kind(plan: ModelPlan, metric: str) -> str | None:
@@ -96,7 +99,8 @@ def build_tasks(spec: GridSpec, done: set[tuple[int, int, int, int, int]]) -> li
     """Tasks covering every cell x fold not yet finished."""
     plan = spec.plan
     n_cap, n_reg = len(plan.capacity_values), len(plan.regularization_values)
-    kind = fast_path_kind(plan, spec.config.metric) if spec.config.fast_path else None
+    kind = (fast_path_kind(plan, spec.config.metric)
+            if spec.config.fast_path and spec.dataset.weights is None else None)
     tasks = []
     for size_index in reversed(range(len(spec.sizes))):   # largest first: a shorter tail
         for fold_index, fold in enumerate(spec.folds):
@@ -247,18 +251,29 @@ def run_task(task: Task, work: Workload) -> list[FoldRow]:
             for (ci, ri), (tr, va, status, path, note) in sorted(results.items())]
 
 
-def _errors(model, work: Workload, X_fit, y_fit, X_val, y_val) -> tuple[float, float]:
-    """Training error on the fitted rows and validation error on the held-out rows."""
+def _errors(model, work: Workload, X_fit, y_fit, X_val, y_val, w_fit=None,
+            w_val=None) -> tuple[float, float]:
+    """Training error on the fitted rows and validation error on the held-out rows (weighted when given)."""
     if work.metric not in metrics.ALL_METRICS:          # a scikit-learn scorer
-        return (metrics.scorer_error(work.metric, model, X_fit, y_fit),
-                metrics.scorer_error(work.metric, model, X_val, y_val))
+        return (metrics.scorer_error(work.metric, model, X_fit, y_fit, w_fit),
+                metrics.scorer_error(work.metric, model, X_val, y_val, w_val))
     if metrics.needs_proba(work.metric):
         p_fit = metrics.proba_for_labels(model, X_fit, work.labels)
         p_val = metrics.proba_for_labels(model, X_val, work.labels)
     else:
         p_fit, p_val = model.predict(X_fit), model.predict(X_val)
-    return (metrics.error_of(work.metric, y_fit, p_fit, work.labels),
-            metrics.error_of(work.metric, y_val, p_val, work.labels))
+    return (metrics.error_of(work.metric, y_fit, p_fit, work.labels, w_fit),
+            metrics.error_of(work.metric, y_val, p_val, work.labels, w_val))
+
+
+def _fit_weighted(model, X, y, weights) -> None:
+    """Fit, passing per-row weights to the final estimator (through a Pipeline's last step)."""
+    if weights is None:
+        model.fit(X, y)
+    elif hasattr(model, "steps"):
+        model.fit(X, y, **{f"{model.steps[-1][0]}__sample_weight": weights})
+    else:
+        model.fit(X, y, sample_weight=weights)
 
 
 def _plain_fit(task: Task, work: Workload, fold, size: int):
@@ -267,8 +282,10 @@ def _plain_fit(task: Task, work: Workload, fold, size: int):
     X_fit, y_fit = _take(work.X, rows), work.y[rows]
     X_val, y_val = _take(work.X, fold.test), work.y[fold.test]
     model = build_model(work.plan, ci, ri, check=False)
-    model.fit(X_fit, y_fit)
-    train_error, validation_error = _errors(model, work, X_fit, y_fit, X_val, y_val)
+    weights = work.weights
+    w_fit, w_val = (None, None) if weights is None else (weights[rows], weights[fold.test])
+    _fit_weighted(model, X_fit, y_fit, w_fit)
+    train_error, validation_error = _errors(model, work, X_fit, y_fit, X_val, y_val, w_fit, w_val)
     return train_error, validation_error, "ok", "plain", ""
 
 

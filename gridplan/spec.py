@@ -10,7 +10,7 @@ from typing import Any
 from gridplan.config import Config
 from gridplan.data import Dataset, load_dataset
 from gridplan.errors import GridplanError
-from gridplan.families import ModelPlan, check_polynomial_memory, plan_model
+from gridplan.families import ModelPlan, check_polynomial_memory, check_takes_weights, plan_model
 from gridplan.splits import Fold, make_folds, size_ladder, smallest_training_fold
 
 
@@ -47,7 +47,8 @@ class GridSpec:
         return {
             "data": {"sha256": self.dataset.fingerprint, "target": c.target, "task": c.task,
                      "features": list(self.dataset.numeric + self.dataset.categorical),
-                     "missing": c.missing},
+                     "missing": c.missing,
+                     **({"weights": c.weights_column} if c.weights_column else {})},
             "model": {"name": c.model_name, "resolved_family": self.plan.family,
                       "params": _jsonable(c.params), "fast_path": c.fast_path,
                       "capacity": _axis_identity(c.capacity),
@@ -167,6 +168,8 @@ def resolve(config: Config, *, allow_any_import: bool = False) -> GridSpec:
         raise GridplanError(f"{config.source.name}: [sizes] smallest training size {sizes[0]} is "
                             f"below the number of classes ({len(dataset.labels)}).")
     check_polynomial_memory(plan, dataset, sizes[-1], config.source.name)
+    if dataset.weights is not None:
+        check_takes_weights(plan, f"{config.source.name}: [data] weights")
     return GridSpec(config=config, dataset=dataset, plan=plan, folds=tuple(folds), sizes=sizes)
 
 

@@ -118,7 +118,8 @@ def test_a_store_path_gives_a_resumable_run_folder(tmp_path):
     grid = gridplan.measure(PIPE, X, y, capacity=("poly__degree", [1, 2]), cv=3, train_sizes=3,
                             store=tmp_path / "kept")
     assert (tmp_path / "kept" / "store.sqlite").is_file()
-    again = gridplan.open_grid(tmp_path / "kept")
+    again = gridplan.open_run(tmp_path / "kept")
+    assert isinstance(again, gridplan.Grid)
     pd.testing.assert_frame_equal(again.cells, grid.cells)
 
 
@@ -248,3 +249,50 @@ def test_config_groups_and_time_columns(tmp_path):
         with pytest.raises(GridplanError, match=message.replace("[", "\\[").replace("]", "\\]")):
             api.check(api.load_config(write_config(tmp_path, {**base, "resampling": resampling},
                                                    "bad.toml")))
+
+
+def test_sample_weights_reach_the_fits_and_the_errors(grouped):
+    # Reference: scikit-learn's cross_validate with the weights routed to the fit and
+    # to the scorer (metadata routing), on the same GroupKFold splits.
+    import sklearn
+    from sklearn.metrics import get_scorer
+    _, X, y, sites, _ = grouped
+    weights = np.random.default_rng(1).uniform(0.2, 3.0, len(y))
+    grid = gridplan.measure(PIPE, X, y, capacity=("poly__degree", [2]),
+                            regularization=("ridge__alpha", [1.0]), cv=GroupKFold(5),
+                            groups=sites, train_sizes=[100, 480], sample_weight=weights)
+    cells = grid.cells
+    full = cells[cells.train_size == 480].sort_values("fold")
+    with sklearn.config_context(enable_metadata_routing=True):
+        ridge = Ridge(alpha=1.0).set_fit_request(sample_weight=True)
+        scale = StandardScaler().set_fit_request(sample_weight=False)   # weights go to the last step
+        model = Pipeline([("poly", PolynomialFeatures(degree=2, include_bias=False)),
+                          ("scale", scale), ("ridge", ridge)])
+        scorer = get_scorer("neg_mean_squared_error").set_score_request(sample_weight=True)
+        ref = cross_validate(model, X, y, cv=GroupKFold(5), scoring=scorer,
+                             return_train_score=True,
+                             params={"sample_weight": weights, "groups": sites})
+    np.testing.assert_allclose(full.validation_error, -ref["test_score"], rtol=1e-9)
+    np.testing.assert_allclose(full.train_error, -ref["train_score"], rtol=1e-9)
+    unweighted = grouped[0].cells
+    same = unweighted[(unweighted.capacity == 2) & (unweighted.regularization == 1.0)
+                      & (unweighted.train_size == 480)].sort_values("fold")
+    assert not np.allclose(same.validation_error, full.validation_error)
+    from sklearn.neighbors import KNeighborsRegressor
+    with pytest.raises(GridplanError, match="KNeighborsRegressor does not take sample_weight"):
+        gridplan.measure(KNeighborsRegressor(), X, y, capacity=("n_neighbors", [5]),
+                         sample_weight=weights)
+
+
+def test_config_weights_column_turns_off_the_shortcut_and_weights_errors(tmp_path):
+    X, y, _ = _sites(10, 12)
+    weights = np.random.default_rng(2).uniform(0.5, 2.0, len(y))
+    X.assign(y=y, w=weights).to_csv(tmp_path / "data.csv", index=False)
+    config = api.load_config(write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y", "weights": "w"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2]}},
+        "sizes": {"count": 3}}))
+    spec = api.check(config)
+    assert "w" not in spec.dataset.X.columns and spec.dataset.weights is not None
+    cells = api.open_run(api.run(config, out=tmp_path / "run", jobs=1)).cells()
+    assert (cells.path == "plain").all() and (cells.status == "ok").all()
