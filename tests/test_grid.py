@@ -296,3 +296,17 @@ def test_config_weights_column_turns_off_the_shortcut_and_weights_errors(tmp_pat
     assert "w" not in spec.dataset.X.columns and spec.dataset.weights is not None
     cells = api.open_run(api.run(config, out=tmp_path / "run", jobs=1)).cells()
     assert (cells.path == "plain").all() and (cells.status == "ok").all()
+
+
+def test_the_readme_notebook_example_runs_as_written(tmp_path, monkeypatch):
+    # The first Python block of the README, executed unchanged.
+    from pathlib import Path
+    text = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    start = text.index("```python\nimport numpy as np, pandas as pd\nimport gridplan")
+    block = text[start + len("```python\n"):text.index("```", start + 10)]
+    monkeypatch.chdir(tmp_path)
+    namespace: dict = {}
+    exec(compile(block, "README.md", "exec"), namespace)
+    assert isinstance(namespace["advice"], Advice)
+    assert namespace["grid"].cells.train_size.max() == 480
+    assert os.listdir(tmp_path) == []                       # nothing written
