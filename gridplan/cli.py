@@ -70,7 +70,10 @@ def _describe(spec, run_dir: Path) -> str:
         lines += _model_lines(model, named=len(spec.models) > 1)
     lines += [
         ("train sizes", ", ".join(map(str, spec.sizes))),
-        ("resampling", f"{plural(c.folds, 'fold')} x {plural(c.repeats, 'repeat')}, seed {c.seed}"),
+        ("resampling", f"{plural(c.folds, 'fold')} x {plural(c.repeats, 'repeat')}, seed {c.seed}"
+                       + (f", grouped by {c.groups_column!r}" if c.groups_column else "")
+                       + (f", forward in time by {c.time_column!r}" if c.time_column else "")
+                       + (f"; weights {c.weights_column!r}" if c.weights_column else "")),
         ("metric", c.metric + (f", target {c.target_error:g}" if c.target_error else "")),
         ("grid", f"{spec.n_cells} cells ({spec.n_settings} settings x {len(spec.sizes)} sizes), "
                  f"{spec.n_fits} fits"),

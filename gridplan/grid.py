@@ -335,11 +335,23 @@ class Grid:
                                    model=self.run.model_name)
 
     def advise(self, *, target: float | None = None, confidence: float | None = None,
-               at: str | None = None, **costs: float):
-        """Diagnosis and the cheapest plan (a gridplan.results.Advice; `.to_dict()` for JSON)."""
+               at: str | None = None, costs: dict | None = None, **cost_values: float):
+        """Diagnosis and the cheapest plan (a gridplan.results.Advice; `.to_dict()` for JSON).
+
+        Costs as a dict (`costs={"per_sample": 5}`) or as keywords (`per_sample=5`):
+        per_sample, capacity_step, regularization_step, max_samples,
+        less_capacity_step, per_fit_second.
+        """
         from gridplan.advisor import advise
+        values = {**(costs or {}), **cost_values}
+        known = {"per_sample", "capacity_step", "regularization_step", "max_samples",
+                 "less_capacity_step", "per_fit_second"}
+        unknown = sorted(set(values) - known)
+        if unknown:
+            raise GridplanError(f"costs has unknown key {unknown[0]!r}; known keys are "
+                                f"{', '.join(sorted(known))}.")
         return advise(self.run, target=target, confidence=confidence, at=at,
-                      curves=self._fits(), **costs)
+                      curves=self._fits(), **values)
 
     def heatmap(self, show: str = "validation", axis: str = "capacity", **options):
         """A heatmap Figure (see gridplan.views.heatmap_figure)."""

@@ -83,6 +83,10 @@ def test_an_in_memory_grid_writes_no_files_and_advises(grouped, tmp_path):
     assert list(advice.to_dict()) == Advice.json_keys()
     assert grid.cells.capacity.dtype.kind in "if"           # numbers, not labels
     assert "gridplan grid" in grid._repr_html_()
+    dear = grid.advise(costs={"per_sample": 50.0})
+    assert dear.costs["per_sample"] == 50.0 == grid.advise(per_sample=50.0).costs["per_sample"]
+    with pytest.raises(GridplanError, match="costs has unknown key 'per_row'"):
+        grid.advise(costs={"per_row": 1})
     summary = grid.curves()
     assert len(summary.settings) == 9 and summary.model == "Pipeline"
     figure = grid.heatmap()
