@@ -17,7 +17,7 @@ from gridplan import api
 from gridplan.config import Config
 from gridplan.errors import GridplanError
 from gridplan.jsonable import plain as _plain
-from gridplan.spec import GridSpec, resolve
+from gridplan.spec import GridSpec
 from gridplan.splits import size_ladder, smallest_training_fold
 
 MIN_CURVE_SIZES = 3
@@ -104,11 +104,12 @@ def render_backtest(result: dict) -> str:
              f"{'capacity':>10} {'regularization':>14} {'family':>6} {'predicted':>10} "
              f"{'band':>21} {'measured':>10} {'rel err':>8}  in band"]
     several = len(result.get("models") or []) > 1
+    shown = None
     for r in result["rows"]:
         band = f"[{r['low']:.3g}, {r['high']:.3g}]"
-        if several and (r is result["rows"][0] or r["model"] != previous):
+        if several and r["model"] != shown:
             lines.append(f"model {r['model']}")
-        previous = r["model"] if several else None
+            shown = r["model"]
         rel = "-" if r["rel_error"] is None else f"{r['rel_error']:.1%}"
         lines.append(f"{r['capacity']:>10} {r['regularization']:>14} {r['family']:>6} "
                      f"{r['predicted']:>10.3g} {band:>21} {r['measured']:>10.3g} {rel:>8}  "

@@ -29,7 +29,7 @@ import math
 import warnings
 from dataclasses import dataclass, field
 from statistics import NormalDist
-from typing import Callable, Iterable, Mapping, Sequence
+from typing import TYPE_CHECKING, Callable, Iterable, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -37,6 +37,9 @@ import pandas as pd
 from gridplan.batchfit import fit_batch, nonnegative_line, parameters_view
 from gridplan.errors import GridplanError
 from gridplan.jsonable import plain as _plain
+
+if TYPE_CHECKING:
+    from gridplan.results import CurvesSummary
 
 # --- documented thresholds -------------------------------------------------
 

@@ -33,7 +33,7 @@ import numpy as np
 import pandas as pd
 
 from gridplan.errors import GridplanError
-from gridplan.metrics import METRIC_LABELS, metric_label
+from gridplan.metrics import metric_label
 from gridplan.wording import plural
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
