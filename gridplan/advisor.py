@@ -29,6 +29,7 @@ from gridplan.diagnosis import (
     best_plateau,
     estimate_noise_floor,
 )
+from gridplan.checks import check_confidence
 from gridplan.errors import GridplanError
 from gridplan.wording import money, sig
 from gridplan.jsonable import plain as _plain
@@ -108,10 +109,7 @@ def _resolve_target(target, config) -> float:
 def _resolve_confidence(confidence, config) -> float:
     if confidence is None:
         confidence = config.confidence if config is not None else 0.9
-    if isinstance(confidence, bool) or not isinstance(confidence, (int, float)) \
-            or not 0.5 <= confidence < 1:
-        raise GridplanError(f"--confidence must lie in [0.5, 1), got {confidence!r}.")
-    return float(confidence)
+    return check_confidence(confidence)
 
 
 # --- measured states and compute time ---------------------------------------------------------

@@ -1,17 +1,42 @@
-"""Checks shared by several modules: paths a user hands over."""
+"""Checks shared by several modules: paths, confidences and targets a user hands over.
+
+One rule each, used by the config, the library and every command, so that
+they cannot drift apart. Messages name the parameter as the caller passes it.
+"""
 
 from __future__ import annotations
 
+import math
 import stat
 from pathlib import Path
 
-from gridplan.errors import GridplanError
+from gridplan.errors import InputError
+
+
+#: Confidence for bands and plans: at least even odds, below certainty.
+CONFIDENCE_RANGE = "[0.5, 1)"
+
+
+def check_confidence(value, name: str = "confidence") -> float:
+    """A confidence in [0.5, 1): bands and plans below even odds mean nothing useful."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)) \
+            or not 0.5 <= value < 1:
+        raise InputError(f"{name} must lie in {CONFIDENCE_RANGE}, got {value!r}.")
+    return float(value)
+
+
+def check_target(value, name: str = "target") -> float:
+    """A target error: a finite number above zero."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)) \
+            or not math.isfinite(value) or value <= 0:
+        raise InputError(f"{name} must be a positive error, got {value!r}.")
+    return float(value)
 
 
 def check_path_text(path: Path, what: str) -> None:
     """Refuse a path holding a NUL byte, which no file system accepts."""
     if "\0" in str(path):
-        raise GridplanError(f"{what} path {str(path)!r} contains a NUL byte.")
+        raise InputError(f"{what} path {str(path)!r} contains a NUL byte.")
 
 
 def check_regular_file(path: Path, what: str) -> None:
@@ -20,12 +45,12 @@ def check_regular_file(path: Path, what: str) -> None:
     try:
         info = path.stat()
     except FileNotFoundError:
-        raise GridplanError(f"{what} {str(path)!r} does not exist.") from None
+        raise InputError(f"{what} {str(path)!r} does not exist.") from None
     except OSError as exc:
-        raise GridplanError(f"{what} {str(path)!r} cannot be opened: {exc.strerror}.") from None
+        raise InputError(f"{what} {str(path)!r} cannot be opened: {exc.strerror}.") from None
     if not stat.S_ISREG(info.st_mode):
         kind = ("a directory" if stat.S_ISDIR(info.st_mode) else
                 "a named pipe (FIFO)" if stat.S_ISFIFO(info.st_mode) else
                 "a device" if stat.S_ISCHR(info.st_mode) or stat.S_ISBLK(info.st_mode) else
                 "a socket" if stat.S_ISSOCK(info.st_mode) else "a special file")
-        raise GridplanError(f"{what} {str(path)!r} is {kind}, not a regular file.")
+        raise InputError(f"{what} {str(path)!r} is {kind}, not a regular file.")

@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING, Callable
 from joblib import register_parallel_backend
 from joblib._dask import DaskDistributedBackend
 
-from gridplan.errors import GridplanError
+from gridplan.errors import ClusterError
 from gridplan.runner import ProgressCallback, build_tasks, run_grid
 from gridplan.spec import GridSpec
 from gridplan.store import Store
@@ -84,7 +84,7 @@ def run_on_cluster(spec: GridSpec, store: Store, address: str, *,
                 if _lost_scattered_data(exc, client) and attempt < LOST_DATA_RETRIES:
                     continue   # a dead worker took the data with it: send it again, go on
                 remaining = spec.n_fits - len(store.finished_keys())
-                raise GridplanError(
+                raise ClusterError(
                     f"{problem}; {remaining} of {spec.n_fits} fits are still to do and every "
                     f"finished one is saved, so rerun the same command to compute the rest.") from None
         return written
@@ -118,7 +118,7 @@ def _require_dask() -> None:
         import dask  # noqa: F401
         import distributed  # noqa: F401
     except ImportError:
-        raise GridplanError(f"running on a dask cluster needs dask and distributed; "
+        raise ClusterError(f"running on a dask cluster needs dask and distributed; "
                             f"install them with: {INSTALL_HINT}") from None
 
 
@@ -137,12 +137,12 @@ def connect(address: str, *, timeout: float | None = None) -> "Client":
     try:
         answer = probe_scheduler(address, timeout)
     except ValueError as exc:
-        raise GridplanError(f"{address!r} is not a dask scheduler address ({exc}); "
+        raise ClusterError(f"{address!r} is not a dask scheduler address ({exc}); "
                             f"write it as tcp://HOST:PORT.") from None
     except (OSError, TimeoutError):
-        raise GridplanError(unreachable) from None
+        raise ClusterError(unreachable) from None
     if not isinstance(answer, dict) or answer.get("type") != "Scheduler":
-        raise GridplanError(f"{address} answered, but not as a dask scheduler; check the "
+        raise ClusterError(f"{address} answered, but not as a dask scheduler; check the "
                             f"address and port.")
     try:
         return Client(address, timeout=timeout, set_as_default=False)
@@ -151,7 +151,7 @@ def connect(address: str, *, timeout: float | None = None) -> "Client":
     # A client that failed to connect is finalised here, while its event loop
     # still runs; left to the interpreter's exit it prints a spurious error.
     gc.collect()
-    raise GridplanError(failure)
+    raise ClusterError(failure)
 
 
 def probe_scheduler(address: str, timeout: float) -> object:
@@ -178,7 +178,7 @@ def cluster_threads(client: "Client", address: str) -> int:
     try:
         client.wait_for_workers(1, timeout=WORKER_TIMEOUT)
     except TimeoutError:
-        raise GridplanError(f"the dask scheduler at {address} has no workers after "
+        raise ClusterError(f"the dask scheduler at {address} has no workers after "
                             f"{WORKER_TIMEOUT:g} s; start some with `dask worker {address}`.") from None
     return max(1, sum(client.nthreads().values()))
 
@@ -195,13 +195,13 @@ def check_workers_have_gridplan(client: "Client", address: str) -> None:
                     f"{WORKER_TIMEOUT:g} s; check that they are running and reachable.")
     for worker, theirs in sorted(found.items()):
         if isinstance(theirs, PackageNotFoundError):
-            raise GridplanError(f"dask worker {worker} (scheduler {address}) does not have "
+            raise ClusterError(f"dask worker {worker} (scheduler {address}) does not have "
                                 f"gridplan installed; install gridplan {mine} on every worker.")
         if isinstance(theirs, BaseException):
-            raise GridplanError(f"dask worker {worker} (scheduler {address}) cannot report its "
+            raise ClusterError(f"dask worker {worker} (scheduler {address}) cannot report its "
                                 f"gridplan version: {theirs}.")
         if theirs != mine:
-            raise GridplanError(f"dask worker {worker} has gridplan {theirs} but this machine "
+            raise ClusterError(f"dask worker {worker} has gridplan {theirs} but this machine "
                                 f"has {mine}; install the same version everywhere so the "
                                 f"numbers match.")
 
@@ -221,7 +221,7 @@ def _within(call: Callable[[], object], seconds: float, failure: str) -> object:
     worker.start()
     worker.join(seconds)
     if worker.is_alive():
-        raise GridplanError(failure)
+        raise ClusterError(failure)
     if "error" in outcome:
         raise outcome["error"]
     return outcome["value"]

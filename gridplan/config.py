@@ -14,8 +14,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from gridplan.checks import check_regular_file
-from gridplan.errors import GridplanError
+from gridplan.checks import check_confidence, check_regular_file
+from gridplan.errors import InputError
 from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
 
 FAMILIES = ("poly-ridge", "tree")
@@ -218,32 +218,32 @@ def _suggest(word: str, options: list[str]) -> str:
 def _check_keys(path: Path, raw: dict[str, Any]) -> None:
     for section, body in raw.items():
         if section not in SCHEMA:
-            raise GridplanError(
+            raise InputError(
                 f"{path.name}: unknown section [{section}]"
                 f"{_suggest(section, list(SCHEMA))}; known sections are "
                 f"{', '.join(SCHEMA)}.")
         if section == "model" and isinstance(body, list):
             if not body or not all(isinstance(b, dict) for b in body):
-                raise GridplanError(f"{path.name}: model must be one [model] table or several "
+                raise InputError(f"{path.name}: model must be one [model] table or several "
                                     f"[[model]] tables.")
             if len(body) > MAX_MODELS:
-                raise GridplanError(f"{path.name}: {len(body)} [[model]] tables, more than the "
+                raise InputError(f"{path.name}: {len(body)} [[model]] tables, more than the "
                                     f"{MAX_MODELS} one run may compare.")
             bodies = body
         elif not isinstance(body, dict):
-            raise GridplanError(f"{path.name}: {section} must be a table like [{section}].")
+            raise InputError(f"{path.name}: {section} must be a table like [{section}].")
         else:
             bodies = [body]
         for number, one in enumerate(bodies, start=1):
             label = section if len(bodies) == 1 else f"{section} {number}"
             for key in one:
                 if key not in SCHEMA[section]:
-                    raise GridplanError(
+                    raise InputError(
                         f"{_where(path, label)} has unknown key {key!r}"
                         f"{_suggest(key, list(SCHEMA[section]))}.")
     for section in REQUIRED_SECTIONS:
         if section not in raw:
-            raise GridplanError(f"{path.name}: the [{section}] section is missing.")
+            raise InputError(f"{path.name}: the [{section}] section is missing.")
 
 
 class _Reader:
@@ -258,35 +258,35 @@ class _Reader:
     def get(self, key: str, kind: str, default: Any = None, required: bool = False) -> Any:
         if key not in self.body:
             if required:
-                raise GridplanError(f"{self.where(key)} is missing.")
+                raise InputError(f"{self.where(key)} is missing.")
             return default
         value = self.body[key]
         if kind == "str" and not isinstance(value, str):
-            raise GridplanError(f"{self.where(key)} must be text, got {value!r}.")
+            raise InputError(f"{self.where(key)} must be text, got {value!r}.")
         if kind == "int" and (isinstance(value, bool) or not isinstance(value, int)):
-            raise GridplanError(f"{self.where(key)} must be a whole number, got {value!r}.")
+            raise InputError(f"{self.where(key)} must be a whole number, got {value!r}.")
         if kind == "number":
             if isinstance(value, bool) or not isinstance(value, (int, float)):
-                raise GridplanError(f"{self.where(key)} must be a number, got {value!r}.")
+                raise InputError(f"{self.where(key)} must be a number, got {value!r}.")
             if not math.isfinite(value):
-                raise GridplanError(f"{self.where(key)} must be finite, got {value!r}.")
+                raise InputError(f"{self.where(key)} must be finite, got {value!r}.")
             value = float(value)
         if kind == "list" and not isinstance(value, list):
-            raise GridplanError(f"{self.where(key)} must be a list, got {value!r}.")
+            raise InputError(f"{self.where(key)} must be a list, got {value!r}.")
         if kind == "bool" and not isinstance(value, bool):
-            raise GridplanError(f"{self.where(key)} must be true or false, got {value!r}.")
+            raise InputError(f"{self.where(key)} must be true or false, got {value!r}.")
         if kind == "table" and not isinstance(value, dict):
-            raise GridplanError(f"{self.where(key)} must be a table, got {value!r}.")
+            raise InputError(f"{self.where(key)} must be a table, got {value!r}.")
         return value
 
 
 def _check_ascending(where: str, values: list[Any]) -> None:
     if not values:
-        raise GridplanError(f"{where} is empty; give at least one value.")
+        raise InputError(f"{where} is empty; give at least one value.")
     if len(set(map(repr, values))) != len(values):
-        raise GridplanError(f"{where} has duplicated values: {values!r}.")
+        raise InputError(f"{where} has duplicated values: {values!r}.")
     if any(values[i] >= values[i + 1] for i in range(len(values) - 1)):
-        raise GridplanError(f"{where} must be sorted ascending, got {values!r}.")
+        raise InputError(f"{where} must be sorted ascending, got {values!r}.")
 
 
 def _read_axis(reader: _Reader, key: str, default_param: str | None,
@@ -297,34 +297,34 @@ def _read_axis(reader: _Reader, key: str, default_param: str | None,
         return Axis(param=None, values=(None,))
     for k in table:
         if k not in AXIS_KEYS:
-            raise GridplanError(f"{where} has unknown key {k!r}{_suggest(k, list(AXIS_KEYS))}.")
+            raise InputError(f"{where} has unknown key {k!r}{_suggest(k, list(AXIS_KEYS))}.")
     if "features" in table:
         if key != "capacity":
-            raise GridplanError(f"{where}: feature sets belong on the capacity axis only.")
+            raise InputError(f"{where}: feature sets belong on the capacity axis only.")
         if "values" in table:
-            raise GridplanError(f"{where}: give either values or features, not both.")
+            raise InputError(f"{where}: give either values or features, not both.")
         if "more" in table:
-            raise GridplanError(f"{where}: feature sets are ordered by nesting; more does not apply.")
+            raise InputError(f"{where}: feature sets are ordered by nesting; more does not apply.")
         return _read_feature_sets(where, table["features"])
     if "values" not in table:
-        raise GridplanError(f"{where}.values is missing.")
+        raise InputError(f"{where}.values is missing.")
     values = table["values"]
     if not isinstance(values, list):
-        raise GridplanError(f"{where}.values must be a list, got {values!r}.")
+        raise InputError(f"{where}.values must be a list, got {values!r}.")
     if len(values) > MAX_AXIS_VALUES:
-        raise GridplanError(f"{where}.values holds {len(values):,} values, more than the "
+        raise InputError(f"{where}.values holds {len(values):,} values, more than the "
                             f"{MAX_AXIS_VALUES:,} an axis may have; space them out (a few dozen "
                             f"on a log scale usually suffice).")
     for v in values:
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-            raise GridplanError(f"{where}.values must hold finite numbers, got {v!r}.")
+            raise InputError(f"{where}.values must hold finite numbers, got {v!r}.")
     _check_ascending(f"{where}.values", values)
     param = table.get("param", default_param)
     if not isinstance(param, str) or not param:
-        raise GridplanError(f"{where}.param must name the estimator parameter, e.g. param = \"alpha\".")
+        raise InputError(f"{where}.param must name the estimator parameter, e.g. param = \"alpha\".")
     more = table.get("more", "smaller" if param in SMALLER_MEANS_MORE[key] else "larger")
     if more not in ("larger", "smaller"):
-        raise GridplanError(f"{where}.more must be \"larger\" or \"smaller\" (which values mean "
+        raise InputError(f"{where}.more must be \"larger\" or \"smaller\" (which values mean "
                             f"more {key}), got {more!r}.")
     ordered = tuple(values) if more == "larger" else tuple(reversed(values))
     return Axis(param=param, values=ordered, more=more)
@@ -332,21 +332,21 @@ def _read_axis(reader: _Reader, key: str, default_param: str | None,
 
 def _read_feature_sets(where: str, sets: Any) -> Axis:
     if isinstance(sets, list) and len(sets) > MAX_AXIS_VALUES:
-        raise GridplanError(f"{where}.features holds {len(sets):,} sets, more than the "
+        raise InputError(f"{where}.features holds {len(sets):,} sets, more than the "
                             f"{MAX_AXIS_VALUES:,} an axis may have.")
     if not isinstance(sets, list) or not sets or not all(
             isinstance(s, list) and s and all(isinstance(c, str) for c in s) for s in sets):
-        raise GridplanError(
+        raise InputError(
             f"{where}.features must be a list of non-empty lists of column names, "
             f"e.g. [[\"temp\"], [\"temp\", \"humidity\"]].")
     for i in range(1, len(sets)):
         if not set(sets[i - 1]) < set(sets[i]):
-            raise GridplanError(
+            raise InputError(
                 f"{where}.features must be nested, each set adding columns to the one "
                 f"before; set {i + 1} {sets[i]!r} does not extend {sets[i - 1]!r}.")
     for s in sets:
         if len(set(s)) != len(s):
-            raise GridplanError(f"{where}.features repeats a column in {s!r}.")
+            raise InputError(f"{where}.features repeats a column in {s!r}.")
     frozen = tuple(tuple(s) for s in sets)
     return Axis(param=None, values=tuple(range(1, len(sets) + 1)), feature_sets=frozen)
 
@@ -358,11 +358,11 @@ def load_config(path: str | Path) -> Config:
     try:
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
-        raise GridplanError(f"config file {str(path)!r} cannot be read: {exc}.") from None
+        raise InputError(f"config file {str(path)!r} cannot be read: {exc}.") from None
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        raise GridplanError(f"{path.name} is not valid TOML: {exc}.") from None
+        raise InputError(f"{path.name} is not valid TOML: {exc}.") from None
     return parse_config(raw, path.resolve(), text)
 
 
@@ -381,7 +381,7 @@ def _resolve_aliases(path: Path, raw: dict[str, Any]) -> dict[str, Any]:
         for one in bodies:
             if isinstance(one, dict) and alias in one:
                 if key in one:
-                    raise GridplanError(f"{path.name}: [{section}] has both {key} and {alias}; "
+                    raise InputError(f"{path.name}: [{section}] has both {key} and {alias}; "
                                         f"keep one.")
                 one = {key if k == alias else k: v for k, v in one.items()}
             renamed.append(one)
@@ -408,35 +408,35 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
             continue
         if value < 0 or (key in ("alpha", "min_share") and not 0 < value <= 1) or \
                 (key == "alpha" and value >= 1):
-            raise GridplanError(f"{diagnosis.where(key)} is out of range, got {value:g}.")
+            raise InputError(f"{diagnosis.where(key)} is out of range, got {value:g}.")
         thresholds[key] = value
 
     data_path = data.get("path", "str", required=True)
     if "\0" in data_path:
-        raise GridplanError(f"{data.where('path')} contains a NUL byte, got {data_path!r}.")
+        raise InputError(f"{data.where('path')} contains a NUL byte, got {data_path!r}.")
     resolved_data = (path.parent / data_path).resolve()
     target = data.get("target", "str", required=True)
     task = data.get("task", "str", default="regression")
     if task not in TASKS:
-        raise GridplanError(f"{data.where('task')} must be one of {', '.join(TASKS)}, got {task!r}"
+        raise InputError(f"{data.where('task')} must be one of {', '.join(TASKS)}, got {task!r}"
                             f"{_suggest(task, list(TASKS))}.")
     features = data.get("features", "list")
     if features is not None:
         if not features or not all(isinstance(c, str) for c in features):
-            raise GridplanError(f"{data.where('features')} must be a non-empty list of column names.")
+            raise InputError(f"{data.where('features')} must be a non-empty list of column names.")
         if len(set(features)) != len(features):
-            raise GridplanError(f"{data.where('features')} names a column twice.")
+            raise InputError(f"{data.where('features')} names a column twice.")
         if target in features:
-            raise GridplanError(f"{data.where('features')} includes the target column {target!r}.")
+            raise InputError(f"{data.where('features')} includes the target column {target!r}.")
         features = tuple(features)
     weights_column = data.get("weights", "str")
     if weights_column is not None and (weights_column == target or
                                        (features is not None and weights_column in features)):
-        raise GridplanError(f"{data.where('weights')} {weights_column!r} is the target or a "
+        raise InputError(f"{data.where('weights')} {weights_column!r} is the target or a "
                             f"feature; weights need a column of their own.")
     missing = data.get("missing", "str", default="refuse")
     if missing not in ("refuse", "impute"):
-        raise GridplanError(f"{data.where('missing')} must be \"refuse\" or \"impute\", got {missing!r}.")
+        raise InputError(f"{data.where('missing')} must be \"refuse\" or \"impute\", got {missing!r}.")
 
     models = _read_models(path, raw["model"])
     first = models[0]
@@ -447,58 +447,57 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     if size_values is not None:
         for v in size_values:
             if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
-                raise GridplanError(f"{sizes.where('values')} must hold positive whole numbers, got {v!r}.")
+                raise InputError(f"{sizes.where('values')} must hold positive whole numbers, got {v!r}.")
         if len(size_values) > MAX_SIZES:
-            raise GridplanError(f"{sizes.where('values')} holds {len(size_values):,} sizes, more "
+            raise InputError(f"{sizes.where('values')} holds {len(size_values):,} sizes, more "
                                 f"than the {MAX_SIZES} a learning curve may have.")
         _check_ascending(sizes.where("values"), size_values)
         size_values = tuple(size_values)
     size_count = sizes.get("count", "int", default=8)
     if not 1 <= size_count <= MAX_SIZES:
-        raise GridplanError(f"{sizes.where('count')} must lie between 1 and {MAX_SIZES}, got "
+        raise InputError(f"{sizes.where('count')} must lie between 1 and {MAX_SIZES}, got "
                             f"{size_count:,}; a learning curve needs a handful of sizes, not more.")
     smallest = sizes.get("smallest", "int")
     if smallest is not None and smallest < 1:
-        raise GridplanError(f"{sizes.where('smallest')} must be positive, got {smallest}.")
+        raise InputError(f"{sizes.where('smallest')} must be positive, got {smallest}.")
 
     folds = resampling.get("folds", "int", default=5)
     if folds < 2:
-        raise GridplanError(f"{resampling.where('folds')} must be at least 2, got {folds}.")
+        raise InputError(f"{resampling.where('folds')} must be at least 2, got {folds}.")
     repeats = resampling.get("repeats", "int", default=1)
     if repeats < 1:
-        raise GridplanError(f"{resampling.where('repeats')} must be at least 1, got {repeats}.")
+        raise InputError(f"{resampling.where('repeats')} must be at least 1, got {repeats}.")
     groups_column = resampling.get("groups", "str")
     time_column = resampling.get("time", "str")
     if groups_column is not None and time_column is not None:
-        raise GridplanError(f"{resampling.where('groups')} and time cannot both be set; choose "
+        raise InputError(f"{resampling.where('groups')} and time cannot both be set; choose "
                             f"grouped or forward-in-time splits.")
     for key, column in (("groups", groups_column), ("time", time_column)):
         if column is not None and column == target:
-            raise GridplanError(f"{resampling.where(key)} names the target column {target!r}.")
+            raise InputError(f"{resampling.where(key)} names the target column {target!r}.")
         if column is not None and features is not None and column in features:
-            raise GridplanError(f"{resampling.where(key)} {column!r} is also listed in [data] "
+            raise InputError(f"{resampling.where(key)} {column!r} is also listed in [data] "
                                 f"features; a resampling column is not a feature.")
     if time_column is not None and repeats != 1:
-        raise GridplanError(f"{resampling.where('repeats')} must be 1 with time = "
+        raise InputError(f"{resampling.where('repeats')} must be 1 with time = "
                             f"{time_column!r}: forward-in-time splits have one order only.")
     seed = resampling.get("seed", "int", default=0)
     if not SEED_RANGE[0] <= seed <= SEED_RANGE[1]:
-        raise GridplanError(f"{resampling.where('seed')} must lie between {SEED_RANGE[0]} and "
+        raise InputError(f"{resampling.where('seed')} must lie between {SEED_RANGE[0]} and "
                             f"{SEED_RANGE[1]:,} (2^32 - 1), got {seed:,}.")
 
     metric = goal.get("metric", "str", default=DEFAULT_METRIC[task])
     allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
     if metric not in allowed and (metric in REGRESSION_METRICS + CLASSIFICATION_METRICS
                                   or not is_scorer(metric)):
-        raise GridplanError(f"{goal.where('metric')} {metric!r} does not fit a {task} task; "
+        raise InputError(f"{goal.where('metric')} {metric!r} does not fit a {task} task; "
                             f"use one of {', '.join(allowed)}, or a scikit-learn scorer name "
                             f"such as \"r2\" or \"roc_auc\".")
     target_error = goal.get("target", "number")
     if target_error is not None and target_error <= 0:
-        raise GridplanError(f"{goal.where('target')} must be a positive error, got {target_error:g}.")
+        raise InputError(f"{goal.where('target')} must be a positive error, got {target_error:g}.")
     confidence = goal.get("confidence", "number", default=0.9)
-    if not 0.5 <= confidence < 1:
-        raise GridplanError(f"{goal.where('confidence')} must lie in [0.5, 1), got {confidence:g}.")
+    check_confidence(confidence, goal.where("confidence"))
 
     cost_values = {}
     for key in ("per_sample", "capacity_step", "regularization_step", "per_fit_second",
@@ -506,15 +505,15 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         value = costs.get(key, "number")
         if value is not None:
             if value < 0:
-                raise GridplanError(f"{costs.where(key)} must not be negative, got {value:g}.")
+                raise InputError(f"{costs.where(key)} must not be negative, got {value:g}.")
             cost_values[key] = value
     max_samples = costs.get("max_samples", "int")
     if max_samples is not None and max_samples < 1:
-        raise GridplanError(f"{costs.where('max_samples')} must be positive, got {max_samples}.")
+        raise InputError(f"{costs.where('max_samples')} must be positive, got {max_samples}.")
     groups = costs.get("feature_groups", "table", default={})
     for name, value in groups.items():
         if isinstance(value, bool) or not isinstance(value, (int, float)) or value < 0:
-            raise GridplanError(f"{costs.where('feature_groups')}.{name} must be a non-negative "
+            raise InputError(f"{costs.where('feature_groups')}.{name} must be a non-negative "
                                 f"number, got {value!r}.")
     cost_obj = Costs(**cost_values, max_samples=max_samples,
                      feature_groups={k: float(v) for k, v in groups.items()})
@@ -523,12 +522,12 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     scheduler = run.get("scheduler", "str")
     limit = run.get("fit_time_limit", "number")
     if limit is not None and not 0 < limit <= MAX_FIT_SECONDS:
-        raise GridplanError(f"{run.where('fit_time_limit')} must be positive seconds up to "
+        raise InputError(f"{run.where('fit_time_limit')} must be positive seconds up to "
                             f"{MAX_FIT_SECONDS:,.0f}, got {limit:g}.")
     name = check_run_name(run.get("name", "str", default=path.stem), run.where("name"))
     max_fits = run.get("max_fits", "int", default=DEFAULT_MAX_FITS)
     if max_fits < 1:
-        raise GridplanError(f"{run.where('max_fits')} must be positive, got {max_fits:,}.")
+        raise InputError(f"{run.where('max_fits')} must be positive, got {max_fits:,}.")
     _check_grid_size(path, models, size_values, size_count, folds, repeats, max_fits)
 
     return Config(
@@ -555,7 +554,7 @@ def _read_models(path: Path, raw: Any) -> tuple[ModelConfig, ...]:
     names = [m.name for m in models]
     for name in names:
         if names.count(name) > 1:
-            raise GridplanError(f"{path.name}: two [[model]] tables are named {name!r}; give "
+            raise InputError(f"{path.name}: two [[model]] tables are named {name!r}; give "
                                 f"each its own name.")
     return tuple(models)
 
@@ -565,10 +564,10 @@ def _read_model(model: "_Reader", several: bool) -> ModelConfig:
     family = model.get("family", "str")
     estimator = model.get("estimator", "str")
     if (family is None) == (estimator is None):
-        raise GridplanError(f"{_where(model.path, model.section)} needs exactly one of family = "
+        raise InputError(f"{_where(model.path, model.section)} needs exactly one of family = "
                             f"\"poly-ridge\"|\"tree\" or estimator = \"sklearn....\".")
     if family is not None and family not in FAMILIES:
-        raise GridplanError(f"{model.where('family')} must be one of {', '.join(FAMILIES)}, "
+        raise InputError(f"{model.where('family')} must be one of {', '.join(FAMILIES)}, "
                             f"got {family!r}{_suggest(family, list(FAMILIES))}.")
     params = model.get("params", "table", default={})
     capacity = _read_axis(model, "capacity", DEFAULT_CAPACITY_PARAM.get(family or ""),
@@ -577,7 +576,7 @@ def _read_model(model: "_Reader", several: bool) -> ModelConfig:
                                 DEFAULT_REGULARIZATION_PARAM.get(family or ""), required=False)
     for axis_name, axis in (("capacity", capacity), ("regularization", regularization)):
         if axis.param and axis.param in params:
-            raise GridplanError(f"{model.where('params')} sets {axis.param!r}, which the "
+            raise InputError(f"{model.where('params')} sets {axis.param!r}, which the "
                                 f"{axis_name} axis already varies.")
     if family is not None and capacity.param is not None and capacity.feature_sets is None:
         _check_family_axis(model.where("capacity"), family, capacity)
@@ -587,7 +586,7 @@ def _read_model(model: "_Reader", several: bool) -> ModelConfig:
     if name is None:
         name = family or estimator.rsplit(".", 1)[-1]
     elif not name or len(name) > MAX_MODEL_NAME or not set(name) <= MODEL_NAME_CHARS:
-        raise GridplanError(f"{model.where('name')} must be 1 to {MAX_MODEL_NAME} letters, digits, "
+        raise InputError(f"{model.where('name')} must be 1 to {MAX_MODEL_NAME} letters, digits, "
                             f"'-', '_' or '.', got {name!r}.")
     return ModelConfig(name=name, family=family, estimator=estimator, params=dict(params),
                        capacity=capacity, regularization=regularization)
@@ -596,7 +595,7 @@ def _read_model(model: "_Reader", several: bool) -> ModelConfig:
 def check_jobs(jobs: int, where: str) -> int:
     """A worker count: -1 (all cores) or 1 .. MAX_JOBS."""
     if jobs == 0 or abs(jobs) > MAX_JOBS:
-        raise GridplanError(f"{where} must be -1 (all cores) or a count from 1 to {MAX_JOBS:,}, "
+        raise InputError(f"{where} must be -1 (all cores) or a count from 1 to {MAX_JOBS:,}, "
                             f"got {jobs:,}.")
     return jobs
 
@@ -604,10 +603,10 @@ def check_jobs(jobs: int, where: str) -> int:
 def check_run_name(name: str, where: str) -> str:
     """A run name must be a plain, printable folder name."""
     if not name or "/" in name or "\\" in name or name in (".", ".."):
-        raise GridplanError(f"{where} must be a plain folder name, got {name!r}.")
+        raise InputError(f"{where} must be a plain folder name, got {name!r}.")
     if not name.isprintable():
         bad = next(ch for ch in name if not ch.isprintable())
-        raise GridplanError(f"{where} must hold printable characters only; {name!r} contains "
+        raise InputError(f"{where} must hold printable characters only; {name!r} contains "
                             f"U+{ord(bad):04X}.")
     return name
 
@@ -620,7 +619,7 @@ def _check_grid_size(path: Path, models: tuple[ModelConfig, ...],
         count = len(m.capacity) * len(m.regularization)
         if count > MAX_SETTINGS:
             where = "[model]" if len(models) == 1 else f"[[model]] {m.name!r}"
-            raise GridplanError(f"{path.name}: {where} the grid has {count:,} settings "
+            raise InputError(f"{path.name}: {where} the grid has {count:,} settings "
                                 f"({len(m.capacity):,} capacity x {len(m.regularization):,} "
                                 f"regularization values), more than the {MAX_SETTINGS:,} whose "
                                 f"curves gridplan can estimate; use fewer values on an axis.")
@@ -628,7 +627,7 @@ def _check_grid_size(path: Path, models: tuple[ModelConfig, ...],
     n_sizes = len(size_values) if size_values is not None else size_count
     fits = settings * n_sizes * folds * repeats
     if fits > max_fits:
-        raise GridplanError(f"{path.name}: the grid asks for {fits:,} fits ({settings:,} "
+        raise InputError(f"{path.name}: the grid asks for {fits:,} fits ({settings:,} "
                             f"settings x {n_sizes} sizes x {folds:,} folds x {repeats:,} repeats), "
                             f"above the limit of {max_fits:,}; shrink an axis, the sizes, folds "
                             f"or repeats, or raise [run] max_fits if you mean it.")
@@ -640,14 +639,14 @@ def _check_family_axis(where: str, family: str, axis: Axis) -> None:
              "tree": {"max_depth", "min_samples_leaf", "min_samples_split", "ccp_alpha",
                       "max_leaf_nodes"}}[family]
     if axis.param not in known:
-        raise GridplanError(f"{where}.param {axis.param!r} is not a parameter of the {family} "
+        raise InputError(f"{where}.param {axis.param!r} is not a parameter of the {family} "
                             f"family{_suggest(axis.param, sorted(known))}; it has "
                             f"{', '.join(sorted(known))}.")
     integer_params = {"degree", "max_depth", "min_samples_leaf", "min_samples_split",
                       "max_leaf_nodes"}
     for v in axis.values:
         if axis.param in integer_params and (not isinstance(v, int) or v < 1):
-            raise GridplanError(f"{where}.values for {axis.param!r} must be positive whole "
+            raise InputError(f"{where}.values for {axis.param!r} must be positive whole "
                                 f"numbers, got {v!r}.")
         if axis.param in ("alpha", "ccp_alpha") and v < 0:
-            raise GridplanError(f"{where}.values for {axis.param!r} must not be negative, got {v!r}.")
+            raise InputError(f"{where}.values for {axis.param!r} must not be negative, got {v!r}.")

@@ -35,7 +35,7 @@ import numpy as np
 import pandas as pd
 
 from gridplan.batchfit import fit_batch, nonnegative_line, parameters_view
-from gridplan.errors import GridplanError
+from gridplan.errors import GridplanError, InputError, NumericalError
 from gridplan.jsonable import plain as _plain
 
 if TYPE_CHECKING:
@@ -632,9 +632,8 @@ class CurveFit:
 
 
 def _check_confidence(confidence: float) -> float:
-    if not 0.0 < confidence < 1.0:
-        raise GridplanError(f"Confidence must lie strictly between 0 and 1, got {confidence!r}.")
-    return float(confidence)
+    from gridplan.checks import check_confidence
+    return check_confidence(confidence)
 
 
 def _point_reach(fam: Family, theta, scale, target, max_size) -> int | None:
@@ -859,7 +858,7 @@ MAX_BOOT = 10_000
 
 def _check_boot(n_boot: int) -> None:
     if isinstance(n_boot, bool) or not isinstance(n_boot, int) or not 2 <= n_boot <= MAX_BOOT:
-        raise GridplanError(f"The bootstrap takes 2 to {MAX_BOOT:,} resamples per curve, "
+        raise InputError(f"The bootstrap takes 2 to {MAX_BOOT:,} resamples per curve, "
                             f"got {n_boot!r}.")
 
 
@@ -896,7 +895,7 @@ def fit_setting(sizes, fold_errors, train_fold_errors=None, *,
                        asymptote_min)
     result = _fit_problems([problem], families, n_boot)[0]
     if isinstance(result, str):
-        raise GridplanError(result)
+        raise NumericalError(result)
     return result
 
 

@@ -13,7 +13,7 @@ from pandas.api.types import is_numeric_dtype
 
 from gridplan.checks import check_regular_file
 from gridplan.config import Config
-from gridplan.errors import GridplanError
+from gridplan.errors import GridplanError, InputError
 
 
 @dataclass(frozen=True)
@@ -56,29 +56,29 @@ def read_table(path: Path) -> pd.DataFrame:
             with open(path, "rb") as handle:
                 head = handle.readline()
             if not head.strip():
-                raise GridplanError(f"data file {path.name} is empty.")
+                raise InputError(f"data file {path.name} is empty.")
             names = [n.strip() for n in head.decode("utf-8", "replace").strip().split(
                 "\t" if suffix == ".tsv" else ",")]
             duplicated = sorted({n for n in names if names.count(n) > 1})
             if duplicated:
-                raise GridplanError(f"data file {path.name} has duplicate column names: "
+                raise InputError(f"data file {path.name} has duplicate column names: "
                                     f"{', '.join(duplicated)}.")
             frame = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",")
         else:
-            raise GridplanError(f"data file {path.name} must be .csv, .tsv or .parquet, "
+            raise InputError(f"data file {path.name} must be .csv, .tsv or .parquet, "
                                 f"got {suffix or 'no extension'}.")
     except GridplanError:
         raise
     except pd.errors.EmptyDataError:
-        raise GridplanError(f"data file {path.name} is empty.") from None
+        raise InputError(f"data file {path.name} is empty.") from None
     except Exception as exc:  # parser errors of every kind end here
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise GridplanError(f"data file {path.name} cannot be read: {first}.") from None
+        raise InputError(f"data file {path.name} cannot be read: {first}.") from None
     if frame.columns.duplicated().any():
         dup = sorted(set(map(str, frame.columns[frame.columns.duplicated()])))
-        raise GridplanError(f"data file {path.name} has duplicate column names: {', '.join(dup)}.")
+        raise InputError(f"data file {path.name} has duplicate column names: {', '.join(dup)}.")
     if len(frame) == 0:
-        raise GridplanError(f"data file {path.name} has a header but no rows.")
+        raise InputError(f"data file {path.name} has a header but no rows.")
     return frame
 
 
@@ -89,7 +89,7 @@ def load_dataset(config: Config) -> Dataset:
     frame.columns = [str(c) for c in frame.columns]
     name = path.name
     if config.target not in frame.columns:
-        raise GridplanError(f"{name} has no target column {config.target!r}; columns are "
+        raise InputError(f"{name} has no target column {config.target!r}; columns are "
                             f"{', '.join(frame.columns[:12])}{' ...' if frame.shape[1] > 12 else ''}.")
     resampling = {}
     if config.weights_column is not None:
@@ -100,32 +100,32 @@ def load_dataset(config: Config) -> Dataset:
         if column is None:
             continue
         if column not in frame.columns:
-            raise GridplanError(f"{name} has no column {column!r} named in [resampling] {key}.")
+            raise InputError(f"{name} has no column {column!r} named in [resampling] {key}.")
         if frame[column].isna().any():
-            raise GridplanError(f"{name}: the [resampling] {key} column {column!r} has "
+            raise InputError(f"{name}: the [resampling] {key} column {column!r} has "
                                 f"{int(frame[column].isna().sum())} missing values.")
         resampling[key] = frame[column].to_numpy()
         frame = frame.drop(columns=[column])      # it sets the splits; it is no feature
     wanted = _feature_columns(config, frame)
     y_raw = frame[config.target]
     if y_raw.isna().all():
-        raise GridplanError(f"{name}: the target column {config.target!r} is entirely missing.")
+        raise InputError(f"{name}: the target column {config.target!r} is entirely missing.")
     if y_raw.isna().any():
-        raise GridplanError(f"{name}: the target column {config.target!r} has "
+        raise InputError(f"{name}: the target column {config.target!r} has "
                             f"{int(y_raw.isna().sum())} missing values; drop or fill those rows.")
     X = frame[list(wanted)].copy()
     missing = X.isna().sum()
     missing = missing[missing > 0]
     if len(missing) and config.missing != "impute":
         listed = ", ".join(f"{c} ({n})" for c, n in missing.items())
-        raise GridplanError(f"{name} has missing feature values in {listed}; fill them or set "
+        raise InputError(f"{name} has missing feature values in {listed}; fill them or set "
                             f"missing = \"impute\" in [data].")
     numeric = tuple(c for c in wanted if is_numeric_dtype(X[c]) and not X[c].dtype == bool)
     infinite = {c: int(np.isinf(X[c].to_numpy(dtype=float)).sum()) for c in numeric}
     infinite = {c: n for c, n in infinite.items() if n}
     if infinite:
         listed = ", ".join(f"{c} ({n})" for c, n in infinite.items())
-        raise GridplanError(f"{name} has infinite feature values in {listed}; replace them with "
+        raise InputError(f"{name} has infinite feature values in {listed}; replace them with "
                             f"finite numbers or leave the cells empty (missing = \"impute\" "
                             f"fills only empty cells).")
     categorical = tuple(c for c in wanted if c not in numeric)
@@ -141,13 +141,13 @@ def load_dataset(config: Config) -> Dataset:
     labels = None
     if config.task == "regression":
         if not is_numeric_dtype(y_raw) or y_raw.dtype == bool:
-            raise GridplanError(f"{name}: the target column {config.target!r} is not numeric, "
+            raise InputError(f"{name}: the target column {config.target!r} is not numeric, "
                                 f"but the task is regression (set task = \"classification\"?).")
         y = y_raw.to_numpy(dtype=float)
         if not np.isfinite(y).all():
-            raise GridplanError(f"{name}: the target column {config.target!r} has infinite values.")
+            raise InputError(f"{name}: the target column {config.target!r} has infinite values.")
         if np.all(y == y[0]):
-            raise GridplanError(f"{name}: the target column {config.target!r} is constant (every "
+            raise InputError(f"{name}: the target column {config.target!r} is constant (every "
                                 f"value is {y[0]:g}), so there is nothing to learn.")
     else:
         y = y_raw.to_numpy()
@@ -155,12 +155,12 @@ def load_dataset(config: Config) -> Dataset:
             y = y_raw.astype(str).to_numpy()
         labels, counts = np.unique(y, return_counts=True)
         if len(labels) < 2:
-            raise GridplanError(f"{name}: the target column {config.target!r} has a single class "
+            raise InputError(f"{name}: the target column {config.target!r} has a single class "
                                 f"({labels[0]!r}); classification needs at least two.")
         rare = [(lab, n) for lab, n in zip(labels, counts) if n < config.folds]
         if rare:
             lab, n = rare[0]
-            raise GridplanError(f"{name}: class {lab!r} of {config.target!r} has only {n} rows, "
+            raise InputError(f"{name}: class {lab!r} of {config.target!r} has only {n} rows, "
                                 f"fewer than the {config.folds} folds.")
     return Dataset(X=X, y=y, numeric=numeric, categorical=categorical, labels=labels,
                    fingerprint=file_fingerprint(path), warnings=tuple(notes),
@@ -171,17 +171,17 @@ def load_dataset(config: Config) -> Dataset:
 def _weights(frame: pd.DataFrame, column: str, name: str) -> np.ndarray:
     """The [data] weights column: finite, non-negative numbers, not all zero."""
     if column not in frame.columns:
-        raise GridplanError(f"{name} has no column {column!r} named in [data] weights.")
+        raise InputError(f"{name} has no column {column!r} named in [data] weights.")
     values = frame[column]
     if not is_numeric_dtype(values) or values.dtype == bool:
-        raise GridplanError(f"{name}: the weights column {column!r} must hold numbers.")
+        raise InputError(f"{name}: the weights column {column!r} must hold numbers.")
     weights = values.to_numpy(dtype=float)
     bad = int((~np.isfinite(weights) | (weights < 0)).sum())
     if bad:
-        raise GridplanError(f"{name}: the weights column {column!r} has {bad} missing, "
+        raise InputError(f"{name}: the weights column {column!r} has {bad} missing, "
                             f"negative or infinite values; weights must be finite and >= 0.")
     if not weights.any():
-        raise GridplanError(f"{name}: the weights column {column!r} is zero everywhere.")
+        raise InputError(f"{name}: the weights column {column!r} is zero everywhere.")
     return weights
 
 
@@ -196,9 +196,9 @@ def _feature_columns(config: Config, frame: pd.DataFrame) -> tuple[str, ...]:
         wanted = tuple(c for c in frame.columns if c != config.target)
     absent = [c for c in wanted if c not in frame.columns]
     if absent:
-        raise GridplanError(f"{name} has no column {absent[0]!r} named in the config.")
+        raise InputError(f"{name} has no column {absent[0]!r} named in the config.")
     if config.target in wanted:
-        raise GridplanError(f"the target column {config.target!r} cannot also be a feature.")
+        raise InputError(f"the target column {config.target!r} cannot also be a feature.")
     if not wanted:
-        raise GridplanError(f"{name} has no feature columns besides the target {config.target!r}.")
+        raise InputError(f"{name} has no feature columns besides the target {config.target!r}.")
     return tuple(wanted)

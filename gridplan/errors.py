@@ -1,8 +1,23 @@
-"""The one exception type that reaches users as a single clear sentence."""
+"""The exceptions that reach users as a single clear sentence.
+
+`GridplanError` is the base every command catches (it prints the message and
+exits 1, no traceback). Its kinds: `InputError` for what the user handed over
+(also a `ValueError`), `NumericalError` for a computation that could not
+finish on the data, `ClusterError` for a scheduler or its workers.
+"""
 
 
 class GridplanError(Exception):
-    """A problem with the user's input or environment, stated in one sentence.
+    """A problem stated in one sentence; the CLI prints it and exits non-zero."""
 
-    The CLI prints the message and exits non-zero; no traceback is shown.
-    """
+
+class InputError(GridplanError, ValueError):
+    """Bad input: a file, section, key, column, option or value, named in the message."""
+
+
+class NumericalError(GridplanError):
+    """A computation (a curve fit, say) that could not finish on these numbers."""
+
+
+class ClusterError(GridplanError):
+    """A dask scheduler or its workers that cannot be reached or used."""

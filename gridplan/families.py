@@ -25,7 +25,7 @@ from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
 from gridplan.config import Config, _suggest
 from gridplan.data import Dataset
-from gridplan.errors import GridplanError
+from gridplan.errors import InputError
 
 POLY_FAMILIES = ("poly-ridge", "poly-logistic")
 
@@ -77,22 +77,22 @@ def resolve_family(config: Config) -> str | None:
 def import_estimator(path: str, allow_any_import: bool) -> type:
     """Import an estimator class by dotted path, refusing non-scikit-learn code by default."""
     if not path.startswith("sklearn.") and not allow_any_import:
-        raise GridplanError(f"estimator {path!r} is outside scikit-learn; gridplan runs only "
+        raise InputError(f"estimator {path!r} is outside scikit-learn; gridplan runs only "
                             f"sklearn.* estimators unless you pass --allow-any-estimator.")
     module_name, _, attr = path.rpartition(".")
     if not module_name:
-        raise GridplanError(f"estimator {path!r} must be a dotted import path such as "
+        raise InputError(f"estimator {path!r} must be a dotted import path such as "
                             f"\"sklearn.ensemble.RandomForestRegressor\".")
     try:
         module = importlib.import_module(module_name)
     except ImportError as exc:
-        raise GridplanError(f"estimator module {module_name!r} cannot be imported: {exc}.") from None
+        raise InputError(f"estimator module {module_name!r} cannot be imported: {exc}.") from None
     if not hasattr(module, attr):
         names = [n for n in dir(module) if not n.startswith("_")]
-        raise GridplanError(f"module {module_name!r} has no estimator {attr!r}{_suggest(attr, names)}.")
+        raise InputError(f"module {module_name!r} has no estimator {attr!r}{_suggest(attr, names)}.")
     cls = getattr(module, attr)
     if not inspect.isclass(cls) or not hasattr(cls, "fit") or not hasattr(cls, "get_params"):
-        raise GridplanError(f"{path!r} is not a scikit-learn estimator class.")
+        raise InputError(f"{path!r} is not a scikit-learn estimator class.")
     return cls
 
 
@@ -121,7 +121,7 @@ def check_takes_weights(plan: ModelPlan, where: str) -> None:
     if hasattr(final, "steps"):
         final = final.steps[-1][1]
     if not has_fit_parameter(final, "sample_weight"):
-        raise GridplanError(f"{where}: {type(final).__name__} does not take sample_weight in "
+        raise InputError(f"{where}: {type(final).__name__} does not take sample_weight in "
                             f"fit, so per-row weights cannot be used with it.")
 
 
@@ -142,20 +142,20 @@ def _check_parameters(config: Config, plan: ModelPlan) -> None:
     final = _final_estimator(plan)
     if plan.estimator_cls is not None:
         if config.task == "regression" and is_classifier(final):
-            raise GridplanError(f"{name}: {config.estimator} is a classifier but the task is regression.")
+            raise InputError(f"{name}: {config.estimator} is a classifier but the task is regression.")
         if config.task == "classification" and is_regressor(final):
-            raise GridplanError(f"{name}: {config.estimator} is a regressor but the task is classification.")
+            raise InputError(f"{name}: {config.estimator} is a regressor but the task is classification.")
     available = set(final.get_params(deep=False))
     if plan.family in POLY_FAMILIES:
         available |= {"degree", "alpha"}
     for label, param in (("capacity", plan.capacity_param if plan.feature_sets is None else None),
                          ("regularization", plan.regularization_param)):
         if param is not None and param not in available:
-            raise GridplanError(f"{name}: [model] {label}.param {param!r} is not a parameter of "
+            raise InputError(f"{name}: [model] {label}.param {param!r} is not a parameter of "
                                 f"{config.model_name}{_suggest(param, sorted(available))}.")
     for param in plan.params:
         if param not in available:
-            raise GridplanError(f"{name}: [model] params sets {param!r}, which "
+            raise InputError(f"{name}: [model] params sets {param!r}, which "
                                 f"{config.model_name} does not have{_suggest(param, sorted(available))}.")
     # The library checks each parameter on its own, so every value of each
     # axis is checked once (beside the other axis's first value), not every pair.
@@ -166,7 +166,7 @@ def _check_parameters(config: Config, plan: ModelPlan) -> None:
             build_model(plan, ci, ri, check=True)
     except (TypeError, ValueError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise GridplanError(f"{name}: [model] values are not accepted by {config.model_name}: "
+        raise InputError(f"{name}: [model] values are not accepted by {config.model_name}: "
                             f"{first}") from None
 
 
@@ -206,7 +206,7 @@ def check_polynomial_memory(plan: ModelPlan, dataset: Dataset, rows: int, where:
     needed = width * rows * 8 * POLY_TABLE_COPIES
     free = available_memory()
     if needed > free:
-        raise GridplanError(
+        raise InputError(
             f"{where}: degree {_largest_degree(plan)} on these columns makes {width:,} polynomial "
             f"features; one fit on {rows:,} rows would need about {_bytes(needed)}, more than the "
             f"{_bytes(free)} of memory available; lower the degree or use fewer columns.")

@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
-import math
 from pathlib import Path
 from typing import Any, Sequence
 
@@ -26,7 +25,7 @@ import pandas as pd
 
 from gridplan.api import Run, open_run
 from gridplan.config import (DEFAULT_METRIC, Axis, Config, Costs, ModelConfig, value_label)
-from gridplan.errors import GridplanError
+from gridplan.errors import InputError
 from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
 
 MEMORY = "in memory"      # what a grid kept in memory gives as its run folder in results
@@ -42,25 +41,25 @@ def _axis(name: str, given: Any, estimator: Any, X: pd.DataFrame) -> Axis:
         param, values = given
         values = list(values)
         if not values:
-            raise GridplanError(f"{name} {param!r} has no values.")
+            raise InputError(f"{name} {param!r} has no values.")
         known = estimator.get_params(deep=True)
         if param not in known:
             close = [k for k in known if k.endswith("__" + param) or k == param.split("__")[-1]]
             hint = f" (did you mean {close[0]!r}?)" if close else ""
-            raise GridplanError(f"{name} parameter {param!r} is not a parameter of "
+            raise InputError(f"{name} parameter {param!r} is not a parameter of "
                                 f"{type(estimator).__name__}{hint}.")
         return Axis(param=param, values=tuple(values))
     sets = [tuple(s) for s in given] if isinstance(given, (list, tuple)) else None
     if name == "capacity" and sets and all(isinstance(s, tuple) and s for s in sets):
         for i in range(1, len(sets)):
             if not set(sets[i - 1]) < set(sets[i]):
-                raise GridplanError(f"capacity feature sets must be nested; set {i + 1} "
+                raise InputError(f"capacity feature sets must be nested; set {i + 1} "
                                     f"{list(sets[i])!r} does not extend {list(sets[i - 1])!r}.")
         absent = [c for c in sets[-1] if c not in X.columns]
         if absent:
-            raise GridplanError(f"capacity feature set names {absent[0]!r}, which X does not have.")
+            raise InputError(f"capacity feature set names {absent[0]!r}, which X does not have.")
         return Axis(param=None, values=tuple(range(1, len(sets) + 1)), feature_sets=tuple(sets))
-    raise GridplanError(f"{name} must be (parameter name, values)"
+    raise InputError(f"{name} must be (parameter name, values)"
                         + (" or a list of nested feature sets" if name == "capacity" else "")
                         + f", got {given!r}.")
 
@@ -70,7 +69,7 @@ def _frame(X: Any) -> pd.DataFrame:
         return X.reset_index(drop=True)
     array = np.asarray(X)
     if array.ndim != 2:
-        raise GridplanError(f"X must be a table (2-D), got an array of shape {array.shape}.")
+        raise InputError(f"X must be a table (2-D), got an array of shape {array.shape}.")
     return pd.DataFrame(array, columns=[f"x{i}" for i in range(array.shape[1])])
 
 
@@ -85,17 +84,17 @@ def _sample_weight(weights: Any, n_rows: int) -> np.ndarray | None:
         return None
     values = np.asarray(weights, dtype=float)
     if values.ndim != 1 or len(values) != n_rows:
-        raise GridplanError(f"sample_weight must give one weight per row: X has {n_rows:,} rows, "
+        raise InputError(f"sample_weight must give one weight per row: X has {n_rows:,} rows, "
                             f"sample_weight has shape {values.shape}.")
     if not np.isfinite(values).all() or (values < 0).any() or not values.any():
-        raise GridplanError("sample_weight must be finite, non-negative and not all zero.")
+        raise InputError("sample_weight must be finite, non-negative and not all zero.")
     return values
 
 
 def _task(estimator: Any, y: np.ndarray, task: str | None) -> str:
     if task is not None:
         if task not in ("regression", "classification"):
-            raise GridplanError(f"task must be 'regression' or 'classification', got {task!r}.")
+            raise InputError(f"task must be 'regression' or 'classification', got {task!r}.")
         return task
     from sklearn.base import is_classifier
     return "classification" if is_classifier(estimator) else "regression"
@@ -134,18 +133,18 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
     try:
         clone(estimator)
     except Exception as exc:       # not an estimator scikit-learn can clone
-        raise GridplanError(f"estimator must be a scikit-learn estimator (clone failed: {exc}).") from None
+        raise InputError(f"estimator must be a scikit-learn estimator (clone failed: {exc}).") from None
     frame = _frame(X)
     target_values = np.asarray(y)
     if target_values.ndim != 1 or len(target_values) != len(frame):
-        raise GridplanError(f"y must be one value per row of X: X has {len(frame):,} rows, y has "
+        raise InputError(f"y must be one value per row of X: X has {len(frame):,} rows, y has "
                             f"shape {target_values.shape}.")
     task = _task(estimator, target_values, task)
     metric = scoring or metric or DEFAULT_METRIC[task]
     allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
     if metric not in allowed and (metric in REGRESSION_METRICS + CLASSIFICATION_METRICS
                                   or not is_scorer(metric)):
-        raise GridplanError(f"metric {metric!r} does not fit a {task} task; use one of "
+        raise InputError(f"metric {metric!r} does not fit a {task} task; use one of "
                             f"{', '.join(allowed)}, or a scikit-learn scorer name such as "
                             f"'r2' or 'roc_auc'.")
     labels = np.unique(target_values) if task == "classification" else None
@@ -189,15 +188,14 @@ def _config(model: ModelConfig, *, metric: str, task: str, target: float | None,
             confidence: float, costs: Costs | dict | None, seed: int, repeats: int,
             name: str) -> Config:
     """A Config for an in-memory grid: the fields the run and the deciding side read."""
-    if target is not None and not (isinstance(target, (int, float)) and math.isfinite(target)
-                                   and target > 0):
-        raise GridplanError(f"target must be a positive error, got {target!r}.")
-    if not 0.5 <= confidence < 1:
-        raise GridplanError(f"confidence must lie in [0.5, 1), got {confidence!r}.")
+    from gridplan.checks import check_confidence, check_target
+    if target is not None:
+        check_target(target)
+    check_confidence(confidence)
     if isinstance(costs, dict):
         unknown = set(costs) - {f.name for f in dataclasses.fields(Costs)}
         if unknown:
-            raise GridplanError(f"costs has unknown key {sorted(unknown)[0]!r}; known keys are "
+            raise InputError(f"costs has unknown key {sorted(unknown)[0]!r}; known keys are "
                                 f"{', '.join(f.name for f in dataclasses.fields(Costs))}.")
         costs = Costs(**costs)
     memory = Path(MEMORY)
@@ -223,29 +221,29 @@ def _folds(cv: Any, X: pd.DataFrame, y: np.ndarray, groups: Any, task: str, repe
             continue
         values = np.asarray(values)
         if values.ndim != 1 or len(values) != len(X):
-            raise GridplanError(f"{name} must give one value per row: X has {len(X):,} rows, "
+            raise InputError(f"{name} must give one value per row: X has {len(X):,} rows, "
                                 f"{name} has shape {values.shape}.")
         per_row[name] = values
     if "groups" in per_row and "time" in per_row:
-        raise GridplanError("groups and time cannot both be given; choose grouped or "
+        raise InputError("groups and time cannot both be given; choose grouped or "
                             "forward-in-time splits.")
     if isinstance(cv, int) and not isinstance(cv, bool):
         if cv < 2:
-            raise GridplanError(f"cv must be at least 2 folds, got {cv}.")
+            raise InputError(f"cv must be at least 2 folds, got {cv}.")
         return make_folds(y, classification=task == "classification", folds=cv,
                           repeats=repeats, seed=seed, **per_row)
     if "time" in per_row:
-        raise GridplanError("time sets forward-in-time splits itself; give cv as a number of "
+        raise InputError("time sets forward-in-time splits itself; give cv as a number of "
                             "folds, not a splitter.")
     if not hasattr(cv, "split"):
-        raise GridplanError(f"cv must be a number of folds or a scikit-learn splitter, got {cv!r}.")
+        raise InputError(f"cv must be a number of folds or a scikit-learn splitter, got {cv!r}.")
     out = []
     for k, (train, test) in enumerate(cv.split(X, y, per_row.get("groups"))):
         rng = np.random.default_rng([seed, 0, k])
         order = nested_order(y[train], rng, task == "classification")
         out.append(Fold(repeat=0, fold=k, train=np.asarray(train)[order], test=np.asarray(test)))
     if len(out) < 2:
-        raise GridplanError(f"cv gave {len(out)} split; a learning curve needs at least 2.")
+        raise InputError(f"cv gave {len(out)} split; a learning curve needs at least 2.")
     return out
 
 
@@ -258,11 +256,11 @@ def _sizes(folds, train_sizes, smallest, labels) -> tuple[int, ...]:
     else:
         values = [int(v) for v in train_sizes]
         if not values or any(v < 1 for v in values) or values != sorted(set(values)):
-            raise GridplanError(f"train_sizes must be positive and ascending, got {list(train_sizes)!r}.")
+            raise InputError(f"train_sizes must be positive and ascending, got {list(train_sizes)!r}.")
         sizes = size_ladder(full, values=tuple(values), count=len(values), smallest=None,
                             where="train_sizes")
     if labels is not None and sizes[0] < len(labels):
-        raise GridplanError(f"the smallest training size {sizes[0]} is below the number of "
+        raise InputError(f"the smallest training size {sizes[0]} is below the number of "
                             f"classes ({len(labels)}).")
     return sizes
 
@@ -348,7 +346,7 @@ class Grid:
                  "less_capacity_step", "per_fit_second"}
         unknown = sorted(set(values) - known)
         if unknown:
-            raise GridplanError(f"costs has unknown key {unknown[0]!r}; known keys are "
+            raise InputError(f"costs has unknown key {unknown[0]!r}; known keys are "
                                 f"{', '.join(sorted(known))}.")
         return advise(self.run, target=target, confidence=confidence, at=at,
                       curves=self._fits(), **values)
@@ -374,7 +372,7 @@ class Grid:
             from gridplan.api import refuse_run_file
             refuse_run_file(self.run.run_dir, path, self.run.run_dir / "report.html")
         if path.is_dir():
-            raise GridplanError(f"cannot write the report to {path}: it is a folder; give a file "
+            raise InputError(f"cannot write the report to {path}: it is a folder; give a file "
                                 f"name such as {path / 'report.html'}.")
         return write_inputs(gather_inputs(self.run, target=target, confidence=confidence), path)
 

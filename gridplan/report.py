@@ -159,10 +159,8 @@ def _check_target(target: float | None) -> float | None:
 
 
 def _check_confidence(confidence: float) -> float:
-    if isinstance(confidence, bool) or not isinstance(confidence, (int, float)) \
-            or not 0.5 <= confidence < 1:
-        raise GridplanError(f"the confidence must lie in [0.5, 1), got {confidence!r}.")
-    return float(confidence)
+    from gridplan.checks import check_confidence
+    return check_confidence(confidence)
 
 
 def read_backtest(run_dir: str | Path) -> tuple[dict | None, str | None]:

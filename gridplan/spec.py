@@ -9,7 +9,7 @@ from typing import Any
 
 from gridplan.config import Config
 from gridplan.data import Dataset, load_dataset
-from gridplan.errors import GridplanError
+from gridplan.errors import InputError
 from gridplan.families import ModelPlan, check_polynomial_memory, check_takes_weights, plan_model
 from gridplan.splits import Fold, make_folds, size_ladder, smallest_training_fold
 
@@ -138,7 +138,7 @@ def resolve_run(config: Config, *, allow_any_import: bool = False) -> RunSpec:
     first = specs[0]
     for other in specs[1:]:
         if other.dataset.n_rows != first.dataset.n_rows or other.sizes != first.sizes:
-            raise GridplanError(f"{config.source.name}: [[model]] {other.model_label!r} sees "
+            raise InputError(f"{config.source.name}: [[model]] {other.model_label!r} sees "
                                 f"{other.dataset.n_rows:,} rows but {first.model_label!r} sees "
                                 f"{first.dataset.n_rows:,}; models of one run must be measured "
                                 f"on the same rows.")
@@ -156,7 +156,7 @@ def resolve(config: Config, *, allow_any_import: bool = False) -> GridSpec:
     plan = plan_model(config, dataset, allow_any_import=allow_any_import)
     classification = config.task == "classification"
     if dataset.n_rows < 2 * config.folds:
-        raise GridplanError(f"{config.data_path.name} has {dataset.n_rows} rows, too few for "
+        raise InputError(f"{config.data_path.name} has {dataset.n_rows} rows, too few for "
                             f"{config.folds} folds (need at least {2 * config.folds}).")
     folds = make_folds(dataset.y, classification=classification, folds=config.folds,
                        repeats=config.repeats, seed=config.seed, groups=dataset.groups,
@@ -165,7 +165,7 @@ def resolve(config: Config, *, allow_any_import: bool = False) -> GridSpec:
     sizes = size_ladder(full, values=config.size_values, count=config.size_count,
                         smallest=config.smallest_size, where=f"{config.source.name}: [sizes]")
     if classification and sizes[0] < len(dataset.labels):
-        raise GridplanError(f"{config.source.name}: [sizes] smallest training size {sizes[0]} is "
+        raise InputError(f"{config.source.name}: [sizes] smallest training size {sizes[0]} is "
                             f"below the number of classes ({len(dataset.labels)}).")
     check_polynomial_memory(plan, dataset, sizes[-1], config.source.name)
     if dataset.weights is not None:

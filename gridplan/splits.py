@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 from sklearn.model_selection import RepeatedKFold, RepeatedStratifiedKFold
 
-from gridplan.errors import GridplanError
+from gridplan.errors import InputError
 
 
 @dataclass(frozen=True)
@@ -58,7 +58,7 @@ def grouped_folds(y: np.ndarray, groups: np.ndarray, *, classification: bool, fo
     from sklearn.model_selection import GroupKFold, StratifiedGroupKFold
     n_groups = len(np.unique(groups))
     if n_groups < folds:
-        raise GridplanError(f"grouped resampling needs at least as many groups as folds: "
+        raise InputError(f"grouped resampling needs at least as many groups as folds: "
                             f"{n_groups} groups for {folds} folds.")
     out = []
     for repeat in range(repeats):
@@ -82,7 +82,7 @@ def time_folds(time: np.ndarray, *, folds: int, repeats: int = 1) -> list[Fold]:
     """
     from sklearn.model_selection import TimeSeriesSplit
     if repeats != 1:
-        raise GridplanError(f"forward-in-time splits have one order only; set repeats = 1 "
+        raise InputError(f"forward-in-time splits have one order only; set repeats = 1 "
                             f"(got {repeats}).")
     order = np.argsort(np.asarray(time), kind="stable")
     out = []
@@ -111,12 +111,12 @@ def size_ladder(full: int, *, values: tuple[int, ...] | None, count: int,
     """Training sizes: the explicit list, or a geometric ladder ending at the full fold."""
     if values is not None:
         if values[-1] > full:
-            raise GridplanError(f"{where} values asks for {values[-1]} training rows, but a "
+            raise InputError(f"{where} values asks for {values[-1]} training rows, but a "
                                 f"training fold holds only {full}.")
         return tuple(int(v) for v in values)
     start = smallest if smallest is not None else max(10, full // 50)
     if start > full:
-        raise GridplanError(f"{where} smallest = {start} is larger than a training fold ({full} rows).")
+        raise InputError(f"{where} smallest = {start} is larger than a training fold ({full} rows).")
     if count == 1 or start == full:
         return (full,)
     ladder = np.unique(np.round(np.geomspace(start, full, count)).astype(int))

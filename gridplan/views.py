@@ -147,13 +147,12 @@ def _target_default(run: "Run", target: float | None) -> float | None:
 
 def _confidence_default(run: "Run", confidence: float | None) -> float:
     if confidence is not None:
-        value = float(confidence)
+        value = confidence
     else:
         config = getattr(run, "config", None)
         value = float(getattr(config, "confidence", 0.9) or 0.9) if config is not None else 0.9
-    if not 0.0 < value < 1.0:
-        raise GridplanError(f"The confidence must lie strictly between 0 and 1, got {value:g}.")
-    return value
+    from gridplan.checks import check_confidence
+    return check_confidence(value)
 
 
 def _usable_cells(run: "Run") -> tuple[pd.DataFrame, int]:

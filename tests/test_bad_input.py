@@ -338,3 +338,35 @@ def test_bootstrap_counts_out_of_range_are_one_sentence(tmp_path):
         result = runner.invoke(app, ["advise", str(run_dir), "--boot", boot])
         assert result.exit_code == 1 and "Traceback" not in result.output
         assert "The bootstrap takes 2 to 10,000 resamples per curve" in result.output
+
+
+def test_one_confidence_rule_everywhere(tmp_path):
+    # common practice, no published source: bands below even odds are refused alike
+    # by the library, the curves and the advice (the rule lives in gridplan.checks).
+    from gridplan.checks import check_confidence
+    from gridplan.errors import GridplanError
+    from gridplan.curves import _check_confidence
+    from gridplan.advisor import _resolve_confidence
+    from gridplan.views import _confidence_default
+    for check in (check_confidence, _check_confidence, lambda v: _resolve_confidence(v, None),
+                  lambda v: _confidence_default(None, v)):
+        assert check(0.9) == 0.9 and check(0.5) == 0.5
+        for bad in (0.3, 1.0, True, "0.9"):
+            with pytest.raises(GridplanError, match=r"must lie in \[0.5, 1\)"):
+                check(bad)
+
+
+def test_errors_say_what_kind_of_problem_they_are(tmp_path):
+    # One base for the CLI to catch; bad input is also a ValueError for library callers.
+    from gridplan import api
+    from gridplan.errors import ClusterError, GridplanError, InputError, NumericalError
+    assert issubclass(InputError, ValueError) and issubclass(InputError, GridplanError)
+    assert issubclass(NumericalError, GridplanError) and issubclass(ClusterError, GridplanError)
+    (tmp_path / "bad.toml").write_text('[data]\npath = "x.csv"\ntarget = "y"\n[model]\n'
+                                       'family = "poly-ridge"\ncapacity = { values = [1] }\n'
+                                       '[goal]\nconfidence = 0.2\n', encoding="utf-8")
+    with pytest.raises(ValueError, match=r"\[goal\] confidence must lie in \[0.5, 1\)"):
+        api.load_config(tmp_path / "bad.toml")
+    from gridplan.curves import fit_setting
+    with pytest.raises(InputError, match="The bootstrap takes 2 to"):
+        fit_setting([10, 20, 40], [[1.0, 1.1], [0.9, 0.8], [0.7, 0.75]], n_boot=1)

@@ -347,7 +347,7 @@ def test_bad_input_raises_one_clear_error():
     with pytest.raises(GridplanError, match="Unknown curve family"):
         fit_setting(SIZES, np.ones((7, 3)), families=("cubic",))
     fit = fit_setting(SIZES, np.tile(pow3(SIZES, 0.1, 2, 0.5)[:, None], (1, 3)), n_boot=5)
-    with pytest.raises(GridplanError, match="Confidence"):
+    with pytest.raises(GridplanError, match="confidence must lie in"):
         fit.band(100.0, 1.5)
     with pytest.raises(GridplanError, match="target"):
         fit.samples_needed(-1.0)
