@@ -17,23 +17,21 @@ import numpy as np
 import pandas as pd
 
 from gridplan.api import open_run
+from gridplan.checks import check_confidence
 from gridplan.config import Costs
 from gridplan.curves import DEFAULT_BOOT, DEFAULT_MAX_SIZE, GridCurves
 from gridplan.diagnosis import (
     NoiseFloor,
+    Plateau,
     Thresholds,
+    best_plateau,
     corrected_t_test,
     diagnose_grid,
     diagnose_setting,
-    Plateau,
-    best_plateau,
     estimate_noise_floor,
 )
-from gridplan.checks import check_confidence
 from gridplan.errors import GridplanError
-from gridplan.wording import money, sig
 from gridplan.jsonable import plain as _plain
-from gridplan.results import Advice
 from gridplan.planner import (
     CostModel,
     State,
@@ -44,7 +42,8 @@ from gridplan.planner import (
     size_ladder,
     state_error_forecasts,
 )
-
+from gridplan.results import Advice
+from gridplan.wording import money, sig
 
 # --- reading the user's choices ---------------------------------------------------------
 
@@ -268,8 +267,8 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     if len(names) == 1:
         return Advice.from_dict(_with_models([_advise_model(run, at=at, curves=curves, **options)],
                                              0, None))
-    from gridplan.curvestore import cached_curves
     from gridplan.curves import floor_across_models
+    from gridplan.curvestore import cached_curves
     runs = [run.for_model(i) for i in range(len(names))]
     grids = [cached_curves(r.run_dir, r.cells(), n_boot=n_boot, seed=seed) for r in runs]
     confidence_value = _resolve_confidence(confidence, run.config)

@@ -12,7 +12,6 @@ from pathlib import Path
 
 from gridplan.errors import InputError
 
-
 #: Confidence for bands and plans: at least even odds, below certainty.
 CONFIDENCE_RANGE = "[0.5, 1)"
 

@@ -35,6 +35,7 @@ def friendly(command: Callable) -> Callable:
     @functools.wraps(command)
     def wrapper(*args, **kwargs):
         import warnings
+
         from gridplan.errors import GridplanError
         warnings.showwarning = _show_warning
         try:
@@ -197,7 +198,7 @@ class _progress_bar:
     def __enter__(self):
         if self.quiet:
             return None
-        from rich.progress import (BarColumn, Progress, TextColumn, TimeRemainingColumn)
+        from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
         self.bar = Progress(TextColumn("[bold]grid"), BarColumn(),
                             TextColumn("{task.fields[cells]}"),
                             TextColumn("{task.fields[rate]}"), TimeRemainingColumn(),
@@ -295,6 +296,7 @@ def curves(run_dir: Path = typer.Argument(..., help="Run folder."),
            boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve.")):
     """Fit, extrapolate and summarise each setting's learning curve."""
     import json
+
     from gridplan import api
     from gridplan.curves import render_summary
     names = api.open_run(run_dir, model=model).model_names
@@ -382,7 +384,9 @@ def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
            as_json: bool = typer.Option(False, "--json", help="Print JSON instead of text.")):
     """Diagnose bias and variance and plan the cheapest way to the target error."""
     import json
-    from gridplan.advisor import advise as make_advice, render_advice
+
+    from gridplan.advisor import advise as make_advice
+    from gridplan.advisor import render_advice
     with _busy("fitting learning curves and planning"):
         advice = make_advice(run_dir, target=target, at=at, confidence=confidence,
                              per_sample=per_sample, capacity_step=capacity_step,
@@ -420,8 +424,10 @@ def backtest(config: Path = typer.Argument(..., help="TOML config file."),
              allow_any_estimator: bool = typer.Option(False, "--allow-any-estimator")):
     """Forecast the full-size error from a fraction of the data and compare with the truth."""
     import json
+
     from gridplan import api
-    from gridplan.backtest import backtest as run_backtest, render_backtest
+    from gridplan.backtest import backtest as run_backtest
+    from gridplan.backtest import render_backtest
     cfg = api.load_config(config)
     quiet = as_json or not sys.stderr.isatty()
     result = run_backtest(cfg, fraction=fraction, out=out, jobs=jobs, n_boot=boot,
@@ -434,6 +440,7 @@ def backtest(config: Path = typer.Argument(..., help="TOML config file."),
 def _keep_backtest(run_dir: Path, result: dict) -> None:
     """Store the backtest beside the main run so that its report can show it."""
     import json
+
     from gridplan.report import BACKTEST_FILE
     if (run_dir / "store.sqlite").is_file():
         (run_dir / BACKTEST_FILE).write_text(json.dumps(result.to_dict(), indent=2),

@@ -157,6 +157,7 @@ def connect(address: str, *, timeout: float | None = None) -> "Client":
 def probe_scheduler(address: str, timeout: float) -> object:
     """The scheduler's identity record, each step (connect, handshake, reply) under `timeout`."""
     import asyncio
+
     from distributed.comm import connect as open_comm
 
     async def ask() -> object:
@@ -237,6 +238,7 @@ def chunk_size(n_tasks: int, threads: int) -> int:
 def _cluster_problem(exc: Exception, address: str) -> str | None:
     """A one-clause description of a cluster failure, or None for other errors."""
     from concurrent.futures import CancelledError
+
     from distributed.comm.core import CommClosedError
     from distributed.scheduler import KilledWorker
     if isinstance(exc, KilledWorker):

@@ -18,8 +18,15 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from gridplan.curves import (DEFAULT_BOOT, DEFAULT_FAMILIES, CurveFit, GridCurves, SettingInfo,
-                             SharedFloor, fit_grid)
+from gridplan.curves import (
+    DEFAULT_BOOT,
+    DEFAULT_FAMILIES,
+    CurveFit,
+    GridCurves,
+    SettingInfo,
+    SharedFloor,
+    fit_grid,
+)
 from gridplan.store import CURVES_NAME
 
 #: Bumped whenever fitting changes what it returns, so older files are ignored.

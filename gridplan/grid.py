@@ -24,7 +24,7 @@ import numpy as np
 import pandas as pd
 
 from gridplan.api import Run, open_run
-from gridplan.config import (DEFAULT_METRIC, Axis, Config, Costs, ModelConfig, value_label)
+from gridplan.config import DEFAULT_METRIC, Axis, Config, Costs, ModelConfig, value_label
 from gridplan.errors import InputError
 from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
 
@@ -127,8 +127,9 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
     step) and weights every error. Estimator objects always run plain fits:
     the exact shortcuts serve the built-in families of a config.
     """
-    from gridplan.spec import GridSpec
     from sklearn.base import clone
+
+    from gridplan.spec import GridSpec
 
     try:
         clone(estimator)

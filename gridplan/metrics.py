@@ -71,7 +71,7 @@ def needs_proba(metric: str) -> bool:
 def error_of(metric: str, y_true: np.ndarray, prediction: np.ndarray,
              labels: np.ndarray | None = None, sample_weight: np.ndarray | None = None) -> float:
     """Error of a prediction (weighted by rows when given); for log loss one column per label."""
-    from sklearn import metrics as skm   # imported here: deciding commands never need it
+    from sklearn import metrics as skm  # imported here: deciding commands never need it
     w = sample_weight
     if metric == "mse":
         return float(skm.mean_squared_error(y_true, prediction, sample_weight=w))

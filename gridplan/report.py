@@ -31,7 +31,7 @@ import pandas as pd
 from gridplan.advisor import left_with_unlimited_data, mean_meets_but_interval_not
 from gridplan.errors import GridplanError
 from gridplan.metrics import METRIC_LABELS, metric_label
-from gridplan.wording import plural, sig, money
+from gridplan.wording import money, plural, sig
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.figure import Figure

@@ -158,6 +158,7 @@ def with_shared_features(tasks: list[Task], work: Workload) -> Workload:
     if not shareable or work.poly_features is not None:
         return work
     from dataclasses import replace
+
     from gridplan.fastpaths import n_poly_columns, polynomial_features
     top = max(int(plan.capacity_values[ci]) for t in tasks for ci in t.capacity_indices)
     if work.X.shape[0] * n_poly_columns(work.X.shape[1], top) * 8 > SHARED_FEATURES_MAX_BYTES:

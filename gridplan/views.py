@@ -817,8 +817,8 @@ def _legend_entries(ax: "Axes", generic: bool) -> tuple[list, list[str]]:
     """One panel's legend entries, with setting-specific numbers dropped for a shared legend."""
     handles, labels = ax.get_legend_handles_labels()
     if generic:
-        labels = ["noise floor estimate (per panel)" if l.startswith("noise floor") else
-                  "fitted curve" if l.startswith("fitted curve") else l for l in labels]
+        labels = ["noise floor estimate (per panel)" if label.startswith("noise floor") else
+                  "fitted curve" if label.startswith("fitted curve") else label for label in labels]
     return handles, labels
 
 

@@ -267,8 +267,8 @@ def test_nul_bytes_in_paths_and_run_names_are_one_sentence(tmp_path):
     result = runner.invoke(app, ["check", str(tmp_path / "gr\0id.toml")])
     assert result.exit_code == 2 and "Invalid value for 'config'" in result.output
     assert "null byte" in result.output and "Traceback" not in result.output
-    from gridplan.errors import GridplanError
     from gridplan import api
+    from gridplan.errors import GridplanError
     with pytest.raises(GridplanError, match="run folder path .* contains a NUL byte"):
         api.open_run(tmp_path / "r\0un")
 
@@ -314,7 +314,8 @@ def test_the_other_spelling_of_regularization_is_accepted_as_an_alias(tmp_path):
 def test_a_huge_tree_depth_is_quick_and_equals_the_full_tree(tmp_path):
     # A depth limit far beyond any tree's depth reads the full tree, without walking
     # 9e18 levels (it once hung `check`).
-    from gridplan.api import check as check_config, open_run, run
+    from gridplan.api import check as check_config
+    from gridplan.api import open_run, run
     from gridplan.config import load_config
     frame = linear_data(200, 2, 0.5, seed=4)
     frame.to_csv(tmp_path / "data.csv", index=False)
@@ -343,10 +344,10 @@ def test_bootstrap_counts_out_of_range_are_one_sentence(tmp_path):
 def test_one_confidence_rule_everywhere(tmp_path):
     # common practice, no published source: bands below even odds are refused alike
     # by the library, the curves and the advice (the rule lives in gridplan.checks).
-    from gridplan.checks import check_confidence
-    from gridplan.errors import GridplanError
-    from gridplan.curves import _check_confidence
     from gridplan.advisor import _resolve_confidence
+    from gridplan.checks import check_confidence
+    from gridplan.curves import _check_confidence
+    from gridplan.errors import GridplanError
     from gridplan.views import _confidence_default
     for check in (check_confidence, _check_confidence, lambda v: _resolve_confidence(v, None),
                   lambda v: _confidence_default(None, v)):

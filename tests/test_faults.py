@@ -171,6 +171,7 @@ def _small_run(tmp_path) -> Path:
 
 def _export(*args: str):
     from typer.testing import CliRunner
+
     from gridplan.cli import app
     return CliRunner().invoke(app, ["export", *map(str, args)])
 
@@ -233,6 +234,7 @@ def test_a_failed_export_leaves_no_half_file(tmp_path, monkeypatch):
 def test_a_scheduler_that_accepts_but_never_answers_fails_in_one_sentence(tmp_path, monkeypatch):
     import socket
     import threading
+
     from gridplan import cluster
     monkeypatch.setattr(cluster, "CONNECT_TIMEOUT", 1.0)
     listener = socket.socket()
@@ -252,6 +254,7 @@ def test_a_scheduler_that_accepts_but_never_answers_fails_in_one_sentence(tmp_pa
 
 def test_report_and_figures_never_replace_the_run_folders_own_files(tmp_path):
     from typer.testing import CliRunner
+
     from gridplan.cli import app
     run_dir = _small_run(tmp_path)
     before = (run_dir / "store.sqlite").read_bytes()

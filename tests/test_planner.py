@@ -18,10 +18,9 @@ from gridplan.planner import (
     cheapest_plan,
     costs_to_goal,
     rank_first_moves,
-    state_error_forecasts,
     size_ladder,
+    state_error_forecasts,
 )
-
 
 # --- brute force ---------------------------------------------------------------------------
 

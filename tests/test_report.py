@@ -22,7 +22,7 @@ from gridplan.config import load_config
 from gridplan.errors import GridplanError
 from gridplan.report import BACKTEST_FILE, REPORT_NAME, read_backtest, write_report
 from gridplan.store import FoldRow, Store
-from gridplan.wording import sig, money
+from gridplan.wording import money, sig
 
 N_BOOT = 10
 TARGET = 0.3
