@@ -1,7 +1,7 @@
 """Advice for a finished run: curves -> diagnosis -> plan, as a JSON-ready dict and as text.
 
 `advise(run_dir, target=...)` reads the run only through the store
-(`gridplan.api.open_run`), fits the learning curves, diagnoses every setting
+(`gridplan.runs.open_run`), fits the learning curves, diagnoses every setting
 and the operating point, and plans the cheapest way to the target under the
 config's costs (options override them).  `render_advice` turns the dict into
 terminal text.
@@ -16,7 +16,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from gridplan.api import open_run
 from gridplan.checks import check_confidence
 from gridplan.config import Costs
 from gridplan.curves import DEFAULT_BOOT, DEFAULT_MAX_SIZE, GridCurves
@@ -43,6 +42,7 @@ from gridplan.planner import (
     state_error_forecasts,
 )
 from gridplan.results import Advice
+from gridplan.runs import open_run
 from gridplan.wording import money, sig
 
 # --- reading the user's choices ---------------------------------------------------------

@@ -9,21 +9,26 @@ from __future__ import annotations
 
 import os
 from contextlib import contextmanager
-from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Iterator
-
-import pandas as pd
 
 from gridplan.checks import check_path_text
 from gridplan.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
 from gridplan.errors import GridplanError
-from gridplan.store import CONFIG_COPY, CURVES_NAME, MODELS_KEY, STORE_NAME, Store
+from gridplan.runs import (  # noqa: F401 (public here as before)
+    EXPORTS_KEY,
+    LOCK_NAME,
+    RUN_FILES,
+    Run,
+    model_index,
+    open_run,
+    refuse_run_file,
+)
+from gridplan.store import CONFIG_COPY, STORE_NAME, Store
 
 if TYPE_CHECKING:   # the grid side (scikit-learn) is imported only where a grid is resolved
     from gridplan.spec import GridSpec, RunSpec
 
-LOCK_NAME = "run.lock"
 DEFAULT_OUTPUTS = Path("outputs")
 
 
@@ -180,102 +185,6 @@ def _locked(run_dir: Path) -> Iterator[None]:
         yield
 
 
-@dataclass
-class Run:
-    """A run folder opened for reading, seen through one of its model tables (`model`)."""
-
-    run_dir: Path
-    meta: dict
-    axes: dict
-    config: Config | None
-    model: int = 0
-
-    @property
-    def model_names(self) -> list[str]:
-        """Every model table's name, in config order (one entry for a single [model])."""
-        entries = self.meta.get(MODELS_KEY) or []
-        if not entries:
-            return [self.meta.get("model_label") or self.meta.get("model") or "model"]
-        return [e.get("model_label") or e.get("model") for e in entries]
-
-    @property
-    def model_name(self) -> str:
-        return self.model_names[self.model]
-
-    def cells(self) -> pd.DataFrame:
-        """This model's tidy per-fold table."""
-        with Store.open_existing(self.run_dir, model=self.model) as store:
-            return store.cells()
-
-    def all_cells(self) -> pd.DataFrame:
-        """Every model's per-fold table, one after another (the `model` column tells them apart)."""
-        frames = [self.for_model(i).cells() for i in range(len(self.model_names))]
-        return pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
-
-    def for_model(self, model: str | int) -> "Run":
-        """The same run seen through another model table (by name or index)."""
-        return open_run(self.run_dir, model=model)
-
-
-def model_index(names: list[str], model: str | int | None, where: str = "model") -> int:
-    """The index of a model table named `model` (None: the first); a clear error otherwise."""
-    if model is None:
-        return 0
-    if isinstance(model, int) and not isinstance(model, bool):
-        if 0 <= model < len(names):
-            return model
-    elif model in names:
-        return names.index(model)
-    raise GridplanError(f"{where} {model!r} is not a model of this run; it has "
-                        f"{', '.join(names)}.")
-
-
-def open_run(run_dir: str | Path | Run, model: str | int | None = None) -> Run:
-    """Open a run folder written by `run` (today's or from another machine).
-
-    `model` names the model table to see (default: the first). A Run (one
-    kept in memory, say) is returned as it is, seen through that model.
-    """
-    if isinstance(run_dir, Run):
-        return run_dir if model is None else run_dir.for_model(model)
-    run_dir = Path(run_dir)
-    check_path_text(run_dir, "run folder")
-    with Store.open_existing(run_dir) as store:
-        names = Run(run_dir, store.meta(), {}, None).model_names
-    index = model_index(names, model)
-    with Store.open_existing(run_dir, model=index) as store:
-        meta, axes = store.meta(), store.axes()
-    config = None
-    copy = run_dir / CONFIG_COPY
-    if copy.is_file():
-        import tomllib
-        try:
-            config = parse_config(tomllib.loads(copy.read_text(encoding="utf-8")),
-                                  copy.resolve(), copy.read_text(encoding="utf-8"))
-        except (GridplanError, tomllib.TOMLDecodeError):
-            config = None
-    if config is not None and len(config.models) > 1:
-        config = config.for_model(index) if index < len(config.models) else None
-    return Run(run_dir=run_dir, meta=meta, axes=axes, config=config, model=index)
-
-
-#: Files of a run folder that an export may never replace.
-RUN_FILES = (STORE_NAME, f"{STORE_NAME}-wal", f"{STORE_NAME}-shm", f"{STORE_NAME}-journal",
-             CONFIG_COPY, LOCK_NAME, CURVES_NAME)
-EXPORTS_KEY = "exports"   # store meta: resolved path -> sha256 of each export written
-
-
-def refuse_run_file(run_dir: str | Path, out: str | Path, example: str | Path) -> Path:
-    """The resolved output path, refused when it is one of the run folder's own files."""
-    run_dir, out = Path(run_dir), Path(out)
-    check_path_text(out, "output")
-    target = out.resolve()
-    if target.parent == run_dir.resolve() and target.name in RUN_FILES:
-        raise GridplanError(f"{out} is the run folder's own {target.name}; write to another "
-                            f"file name, e.g. {example}.")
-    return target
-
-
 def export_cells(run_dir: str | Path, out: str | Path, *, force: bool = False) -> int:
     """Write the per-fold table as CSV (or Parquet by extension); returns the row count.
 
@@ -339,13 +248,8 @@ def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> 
 def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0,
                model: str | int | None = None):
     """Fit a learning curve per setting of a run's model (see gridplan.curves.fit_grid)."""
-    from gridplan.curvestore import cached_curves
-    run = open_run(run_dir, model=model)
-    cells = run.cells()
-    if cells.empty:
-        raise GridplanError(f"{run.run_dir or 'the grid'} holds no finished fits yet; run the "
-                            f"grid first.")
-    return cached_curves(run.run_dir, cells, n_boot=n_boot, seed=seed)
+    from gridplan.curvestore import run_curves
+    return run_curves(run_dir, n_boot=n_boot, seed=seed, model=model)
 
 
 def curves_report(run_dir: str | Path, *, target: float | None = None,

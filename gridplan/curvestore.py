@@ -149,3 +149,15 @@ def grid_from_json(data: dict) -> GridCurves:
         from gridplan.calibration import Calibration
         grid.calibration = Calibration(**data["calibration"])
     return grid
+
+
+def run_curves(run_dir, *, n_boot: int = DEFAULT_BOOT, seed: int = 0, model=None) -> GridCurves:
+    """The curves of a run's model (a folder or a Run), kept in its folder when it has one."""
+    from gridplan.errors import GridplanError
+    from gridplan.runs import open_run
+    run = open_run(run_dir, model=model)
+    cells = run.cells()
+    if cells.empty:
+        raise GridplanError(f"{run.run_dir or 'the grid'} holds no finished fits yet; run the "
+                            f"grid first.")
+    return cached_curves(run.run_dir, cells, n_boot=n_boot, seed=seed)

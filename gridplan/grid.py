@@ -23,10 +23,10 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
-from gridplan.api import Run, open_run
 from gridplan.config import DEFAULT_METRIC, Axis, Config, Costs, ModelConfig, value_label
 from gridplan.errors import InputError
 from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
+from gridplan.runs import Run, open_run
 
 MEMORY = "in memory"      # what a grid kept in memory gives as its run folder in results
 
@@ -299,7 +299,7 @@ class MemoryRun(Run):
         return self.frame.copy()
 
     def for_model(self, model: str | int) -> "MemoryRun":
-        from gridplan.api import model_index
+        from gridplan.runs import model_index
         model_index(self.model_names, model)
         return self
 
@@ -370,7 +370,7 @@ class Grid:
         from gridplan.report import gather_inputs, write_inputs
         path = Path(path)
         if self.run.run_dir is not None:
-            from gridplan.api import refuse_run_file
+            from gridplan.runs import refuse_run_file
             refuse_run_file(self.run.run_dir, path, self.run.run_dir / "report.html")
         if path.is_dir():
             raise InputError(f"cannot write the report to {path}: it is a folder; give a file "

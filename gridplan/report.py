@@ -36,8 +36,8 @@ from gridplan.wording import money, plural, sig
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.figure import Figure
 
-    from gridplan.api import Run
     from gridplan.curves import GridCurves
+    from gridplan.runs import Run
 
 REPORT_NAME = "report.html"
 BACKTEST_FILE = "backtest.json"
@@ -211,11 +211,12 @@ def gather_inputs(run_dir: str | Path, *, target: float | None = None,
     With several models the pictures and tables show the operating point's
     model (`model`, or the one the advisor stands at).
     """
-    from gridplan import api
+    from gridplan import runs
     from gridplan.advisor import advise, parse_operating_point
     from gridplan.curves import curves_summary
+    from gridplan.curvestore import run_curves
 
-    run = api.open_run(run_dir, model=model)
+    run = runs.open_run(run_dir, model=model)
     several = len(run.model_names) > 1
     cells = run.cells()
     if cells.empty or not (cells["status"] == "ok").any():
@@ -245,9 +246,9 @@ def gather_inputs(run_dir: str | Path, *, target: float | None = None,
     elif several:
         ask()
         if advice is not None:
-            run = api.open_run(run_dir, model=advice["operating_point"]["model"])
+            run = runs.open_run(run_dir, model=advice["operating_point"]["model"])
             cells = run.cells()
-    fits = api.fit_curves(run_dir, n_boot=n_boot, seed=seed, model=run.model)
+    fits = run_curves(run_dir, n_boot=n_boot, seed=seed, model=run.model)
     summary = curves_summary(fits, target=target, confidence=confidence)
     if target is not None and not several:
         ask(fits)
@@ -975,7 +976,7 @@ def render_page(**fields: Any) -> str:
 def _writable_target(run_dir: Path, out: str | Path | None) -> Path:
     """The report path, refused early when it cannot be written."""
     path = Path(out) if out is not None else run_dir / REPORT_NAME
-    from gridplan.api import refuse_run_file
+    from gridplan.runs import refuse_run_file
     refuse_run_file(run_dir, path, run_dir / REPORT_NAME)
     if path.is_dir():
         raise GridplanError(f"cannot write the report to {path}: it is a folder; give a file name "

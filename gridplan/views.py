@@ -1,6 +1,6 @@
 """Pictures of a run: grid heatmaps and learning-curve plots, as matplotlib Figures.
 
-Views read a run through `gridplan.api.open_run` (its `cells()` table, axes and
+Views read a run through `gridplan.runs.open_run` (its `cells()` table, axes and
 meta) and take curve fits and advice as arguments; nothing below imports views.
 Figures are built without pyplot, so none lingers in a global list; save them
 with `save_figure` (PNG or SVG by extension) or embed them with
@@ -40,8 +40,8 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.axes import Axes
     from matplotlib.figure import Figure
 
-    from gridplan.api import Run
     from gridplan.curves import CurveFit
+    from gridplan.runs import Run
 
 SHOWS = ("validation", "train", "gap")
 HEATMAP_AXES = ("capacity", "regularization")
