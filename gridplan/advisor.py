@@ -98,7 +98,7 @@ def _resolve_target(target, config) -> float:
     if target is None:
         target = config.target_error if config is not None else None
     if target is None:
-        raise GridplanError("no target error given: pass --target or set [goal] target in the config.")
+        raise GridplanError("no target error given: pass a target (--target) or set [goal] target in the config.")
     if isinstance(target, bool) or not isinstance(target, (int, float)) or not math.isfinite(target) \
             or target <= 0:
         raise GridplanError(f"the target error must be a positive number, got {target!r}.")

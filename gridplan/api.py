@@ -12,7 +12,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import TYPE_CHECKING, Iterator
 
-from gridplan.checks import check_path_text
+from gridplan.checks import DEFAULT_BOOT, check_path_text
 from gridplan.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
 from gridplan.errors import GridplanError
 from gridplan.runs import (  # noqa: F401 (public here as before)
@@ -245,7 +245,7 @@ def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> 
     return resolve_run(config, allow_any_import=allow_any_estimator)
 
 
-def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0,
+def fit_curves(run_dir: str | Path, *, n_boot: int = DEFAULT_BOOT, seed: int = 0,
                model: str | int | None = None):
     """Fit a learning curve per setting of a run's model (see gridplan.curves.fit_grid)."""
     from gridplan.curvestore import run_curves
@@ -253,7 +253,7 @@ def fit_curves(run_dir: str | Path, *, n_boot: int = 100, seed: int = 0,
 
 
 def curves_report(run_dir: str | Path, *, target: float | None = None,
-                  confidence: float | None = None, n_boot: int = 100, seed: int = 0,
+                  confidence: float | None = None, n_boot: int = DEFAULT_BOOT, seed: int = 0,
                   model: str | int | None = None):
     """Per-setting curve summary of one model (a gridplan.results.CurvesSummary) (family, noise floor, forecasts, samples needed)."""
     from gridplan.curves import curves_summary
@@ -263,7 +263,7 @@ def curves_report(run_dir: str | Path, *, target: float | None = None,
     if confidence is None:
         confidence = run.config.confidence if run.config is not None else 0.9
     if target is not None and target <= 0:
-        raise GridplanError(f"--target must be a positive error, got {target:g}.")
+        raise GridplanError(f"target must be a positive error, got {target:g}.")
     fits = fit_curves(run_dir, n_boot=n_boot, seed=seed, model=run.model)
     import dataclasses
     summary = curves_summary(fits, target=target, confidence=confidence)

@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from gridplan import api
+from gridplan.checks import DEFAULT_BOOT
 from gridplan.config import Config
 from gridplan.errors import GridplanError
 from gridplan.jsonable import plain as _plain
@@ -26,13 +27,13 @@ MIN_CURVE_SIZES = 3
 def backtest_spec(spec: GridSpec, fraction: float) -> GridSpec:
     """The config's grid with a size ladder up to fraction x full, plus the full size."""
     if not 0 < fraction < 1:
-        raise GridplanError(f"--fraction must lie strictly between 0 and 1, got {fraction:g}.")
+        raise GridplanError(f"fraction must lie strictly between 0 and 1, got {fraction:g}.")
     full = smallest_training_fold(list(spec.folds))
     limit = int(np.floor(fraction * full))
     c = spec.config
     smallest = c.smallest_size if c.smallest_size is not None else spec.sizes[0]
     if limit < smallest or limit < MIN_CURVE_SIZES:
-        raise GridplanError(f"--fraction {fraction:g} leaves {limit} training rows, fewer than the "
+        raise GridplanError(f"fraction {fraction:g} leaves {limit} training rows, fewer than the "
                             f"smallest size {smallest}; use a larger fraction.")
     if c.size_values is not None:
         small = tuple(v for v in c.size_values if v <= limit)
@@ -40,14 +41,14 @@ def backtest_spec(spec: GridSpec, fraction: float) -> GridSpec:
         small = size_ladder(limit, values=None, count=max(c.size_count, MIN_CURVE_SIZES),
                             smallest=smallest)
     if len(small) < MIN_CURVE_SIZES:
-        raise GridplanError(f"--fraction {fraction:g} leaves only {len(small)} training sizes "
+        raise GridplanError(f"fraction {fraction:g} leaves only {len(small)} training sizes "
                             f"(need {MIN_CURVE_SIZES}) to fit curves on; use a larger fraction "
                             f"or more sizes.")
     return dataclasses.replace(spec, sizes=tuple(sorted(set(small) | {full})))
 
 
 def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None = None,
-             jobs: int | None = None, n_boot: int = 100, seed: int = 0,
+             jobs: int | None = None, n_boot: int = DEFAULT_BOOT, seed: int = 0,
              progress=None, allow_any_estimator: bool = False):
     """Run the backtest grid (resumably) and compare forecasts with measurements (a results.Backtest)."""
     from gridplan.curves import fit_grid

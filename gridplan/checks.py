@@ -12,6 +12,11 @@ from pathlib import Path
 
 from gridplan.errors import InputError
 
+#: Bootstrap resamples per curve: one default for every command and function
+#: (so they agree on one run), and the most a curve may ask for.
+DEFAULT_BOOT = 100
+MAX_BOOT = 10_000
+
 #: Confidence for bands and plans: at least even odds, below certainty.
 CONFIDENCE_RANGE = "[0.5, 1)"
 
@@ -30,6 +35,14 @@ def check_target(value, name: str = "target") -> float:
             or not math.isfinite(value) or value <= 0:
         raise InputError(f"{name} must be a positive error, got {value!r}.")
     return float(value)
+
+
+def check_boot(n_boot, name: str = "n_boot") -> int:
+    """Bootstrap resamples per curve: a whole number from 2 to MAX_BOOT."""
+    if isinstance(n_boot, bool) or not isinstance(n_boot, int) or not 2 <= n_boot <= MAX_BOOT:
+        raise InputError(f"{name}: the bootstrap takes 2 to {MAX_BOOT:,} resamples per curve, "
+                         f"got {n_boot!r}.")
+    return n_boot
 
 
 def check_path_text(path: Path, what: str) -> None:

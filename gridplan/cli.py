@@ -13,6 +13,7 @@ from typing import Callable, Optional
 
 import typer
 
+from gridplan.checks import DEFAULT_BOOT
 from gridplan.wording import plural
 
 app = typer.Typer(add_completion=False, no_args_is_help=True,
@@ -293,7 +294,7 @@ def curves(run_dir: Path = typer.Argument(..., help="Run folder."),
            output: Optional[Path] = typer.Option(None, "-o", "--output", help="Plot file (with --plot)."),
            model: Optional[str] = typer.Option(None, "--model",
                                                help="Only this model (runs of several models; default all)."),
-           boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve.")):
+           boot: int = typer.Option(DEFAULT_BOOT, "--boot", help="Bootstrap resamples per curve.")):
     """Fit, extrapolate and summarise each setting's learning curve."""
     import json
 
@@ -380,7 +381,7 @@ def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
                                                         help="Cost of switching to another model of the run."),
            model: Optional[str] = typer.Option(None, "--model",
                                                help="Model the operating point belongs to (runs of several models)."),
-           boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve."),
+           boot: int = typer.Option(DEFAULT_BOOT, "--boot", help="Bootstrap resamples per curve."),
            as_json: bool = typer.Option(False, "--json", help="Print JSON instead of text.")):
     """Diagnose bias and variance and plan the cheapest way to the target error."""
     import json
@@ -404,7 +405,7 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder."),
            confidence: Optional[float] = typer.Option(None, "--confidence"),
            model: Optional[str] = typer.Option(None, "--model",
                                                help="Model of the operating point (runs of several models)."),
-           boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve.")):
+           boot: int = typer.Option(DEFAULT_BOOT, "--boot", help="Bootstrap resamples per curve.")):
     """Write one self-contained HTML report: grid, curves, diagnosis, plan and cautions."""
     from gridplan.report import write_report
     with _busy("writing the report"):
@@ -420,7 +421,7 @@ def backtest(config: Path = typer.Argument(..., help="TOML config file."),
              out: Optional[Path] = typer.Option(None, "--out", help="Run folder (default outputs/<name>-backtest)."),
              jobs: Optional[int] = typer.Option(None, "--jobs", "-j"),
              as_json: bool = typer.Option(False, "--json", help="Print JSON instead of a table."),
-             boot: int = typer.Option(100, "--boot", help="Bootstrap resamples per curve."),
+             boot: int = typer.Option(DEFAULT_BOOT, "--boot", help="Bootstrap resamples per curve."),
              allow_any_estimator: bool = typer.Option(False, "--allow-any-estimator")):
     """Forecast the full-size error from a fraction of the data and compare with the truth."""
     import json

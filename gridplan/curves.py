@@ -35,7 +35,8 @@ import numpy as np
 import pandas as pd
 
 from gridplan.batchfit import fit_batch, nonnegative_line, parameters_view
-from gridplan.errors import GridplanError, InputError, NumericalError
+from gridplan.checks import DEFAULT_BOOT, MAX_BOOT, check_boot  # noqa: F401 (re-exported)
+from gridplan.errors import GridplanError, NumericalError
 from gridplan.jsonable import plain as _plain
 
 if TYPE_CHECKING:
@@ -69,7 +70,6 @@ MISFIT_LEVEL = 0.9
 MIN_SIZES_FOR_CHOICE = 5
 #: Bootstrap resamples per curve, the same for every command, so that `advise`,
 #: `report` and `demo` on one run give the same bands and plans.
-DEFAULT_BOOT = 100
 
 #: Largest training size the samples-needed search will consider.
 DEFAULT_MAX_SIZE = 1e12
@@ -853,13 +853,10 @@ def _fit_problems(problems: list[_Problem], families: tuple[str, ...],
 
 
 #: Most bootstrap resamples per curve; past it the stacked fits outgrow memory.
-MAX_BOOT = 10_000
 
 
 def _check_boot(n_boot: int) -> None:
-    if isinstance(n_boot, bool) or not isinstance(n_boot, int) or not 2 <= n_boot <= MAX_BOOT:
-        raise InputError(f"The bootstrap takes 2 to {MAX_BOOT:,} resamples per curve, "
-                            f"got {n_boot!r}.")
+    check_boot(n_boot)
 
 
 def _check_families(families: Iterable[str]) -> tuple[str, ...]:

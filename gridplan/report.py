@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 
 from gridplan.advisor import left_with_unlimited_data, mean_meets_but_interval_not
+from gridplan.checks import DEFAULT_BOOT
 from gridplan.errors import GridplanError
 from gridplan.metrics import METRIC_LABELS, metric_label
 from gridplan.wording import money, plural, sig
@@ -205,7 +206,7 @@ def _looks_like_backtest(result: Any) -> bool:
 
 def gather_inputs(run_dir: str | Path, *, target: float | None = None,
                   confidence: float | None = None, at: str | None = None,
-                  n_boot: int = 100, seed: int = 0, model: str | None = None) -> ReportInputs:
+                  n_boot: int = DEFAULT_BOOT, seed: int = 0, model: str | None = None) -> ReportInputs:
     """Open the run, fit its curves once, and ask the advisor (when a target is known).
 
     With several models the pictures and tables show the operating point's
@@ -993,7 +994,7 @@ def _writable_target(run_dir: Path, out: str | Path | None) -> Path:
 
 def write_report(run_dir: str | Path, out: str | Path | None = None, *,
                  target: float | None = None, confidence: float | None = None,
-                 at: str | None = None, n_boot: int = 100, seed: int = 0,
+                 at: str | None = None, n_boot: int = DEFAULT_BOOT, seed: int = 0,
                  model: str | None = None) -> Path:
     """Write the HTML report of a run (default RUN_DIR/report.html) and return its path.
 

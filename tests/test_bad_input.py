@@ -338,7 +338,7 @@ def test_bootstrap_counts_out_of_range_are_one_sentence(tmp_path):
     for boot in ("1", "100000000"):
         result = runner.invoke(app, ["advise", str(run_dir), "--boot", boot])
         assert result.exit_code == 1 and "Traceback" not in result.output
-        assert "The bootstrap takes 2 to 10,000 resamples per curve" in result.output
+        assert "the bootstrap takes 2 to 10,000 resamples per curve" in result.output
 
 
 def test_one_confidence_rule_everywhere(tmp_path):
@@ -369,5 +369,5 @@ def test_errors_say_what_kind_of_problem_they_are(tmp_path):
     with pytest.raises(ValueError, match=r"\[goal\] confidence must lie in \[0.5, 1\)"):
         api.load_config(tmp_path / "bad.toml")
     from gridplan.curves import fit_setting
-    with pytest.raises(InputError, match="The bootstrap takes 2 to"):
+    with pytest.raises(InputError, match="the bootstrap takes 2 to"):
         fit_setting([10, 20, 40], [[1.0, 1.1], [0.9, 0.8], [0.7, 0.75]], n_boot=1)
