@@ -694,7 +694,8 @@ def render_advice(advice: dict) -> str:
         for m in models:
             plateau = ("-" if m["plateau"] is None else
                        f"{_g(m['plateau'])} {_interval(m['plateau_band'])}")
-            own = (f"own plan {_money(m['plan_cost'])}" if m["reachable"]
+            own = ("meets the target as it is" if m["reachable"] and not m["plan_cost"] else
+                   f"own plan {_money(m['plan_cost'])}" if m["reachable"]
                    else f"no plan of its own ({m['binding_limit']})")
             lines.append(f"  {m['name']:<12} {m['family'] or '':<12} {m['capacity_param']} / "
                          f"{m['regularization_param']} {m['best_setting']:<12} validation "

@@ -611,8 +611,8 @@ def _models_section(inputs: ReportInputs, number: int) -> Markup:
     a = inputs.advice
     rows = []
     for m in a["models"]:
-        own = (f"{_money(m['plan_cost'])}" if m["reachable"]
-               else f"none ({m['binding_limit']})")
+        own = ("none needed: meets the target" if m["reachable"] and not m["plan_cost"] else
+               f"{_money(m['plan_cost'])}" if m["reachable"] else f"none ({m['binding_limit']})")
         rows.append([m["name"], m["family"] or "", f"{m['capacity_param']} / "
                      f"{m['regularization_param']}", m["best_setting"],
                      _num(m["validation_error"]),
