@@ -45,6 +45,18 @@ def check_boot(n_boot, name: str = "n_boot") -> int:
     return n_boot
 
 
+def check_metric(metric: str, task: str, where: str = "metric") -> str:
+    """A metric that fits the task: one of gridplan's for that task, or a scikit-learn scorer name."""
+    from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
+    allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
+    if metric not in allowed and (metric in REGRESSION_METRICS + CLASSIFICATION_METRICS
+                                  or not is_scorer(metric)):
+        raise InputError(f"{where} {metric!r} does not fit a {task} task; use one of "
+                         f"{', '.join(allowed)}, or a scikit-learn scorer name such as "
+                         f"\"r2\" or \"roc_auc\".")
+    return metric
+
+
 def check_path_text(path: Path, what: str) -> None:
     """Refuse a path holding a NUL byte, which no file system accepts."""
     if "\0" in str(path):

@@ -14,9 +14,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from gridplan.checks import check_confidence, check_regular_file
+from gridplan.checks import check_confidence, check_metric, check_regular_file
 from gridplan.errors import InputError
-from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
 
 FAMILIES = ("poly-ridge", "tree")
 TASKS = ("regression", "classification")
@@ -486,13 +485,8 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
         raise InputError(f"{resampling.where('seed')} must lie between {SEED_RANGE[0]} and "
                             f"{SEED_RANGE[1]:,} (2^32 - 1), got {seed:,}.")
 
-    metric = goal.get("metric", "str", default=DEFAULT_METRIC[task])
-    allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
-    if metric not in allowed and (metric in REGRESSION_METRICS + CLASSIFICATION_METRICS
-                                  or not is_scorer(metric)):
-        raise InputError(f"{goal.where('metric')} {metric!r} does not fit a {task} task; "
-                            f"use one of {', '.join(allowed)}, or a scikit-learn scorer name "
-                            f"such as \"r2\" or \"roc_auc\".")
+    metric = check_metric(goal.get("metric", "str", default=DEFAULT_METRIC[task]), task,
+                          goal.where("metric"))
     target_error = goal.get("target", "number")
     if target_error is not None and target_error <= 0:
         raise InputError(f"{goal.where('target')} must be a positive error, got {target_error:g}.")

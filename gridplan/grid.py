@@ -23,9 +23,9 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
+from gridplan.checks import check_metric
 from gridplan.config import DEFAULT_METRIC, Axis, Config, Costs, ModelConfig, value_label
 from gridplan.errors import InputError
-from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
 from gridplan.runs import Run, open_run
 
 MEMORY = "in memory"      # what a grid kept in memory gives as its run folder in results
@@ -141,13 +141,8 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
         raise InputError(f"y must be one value per row of X: X has {len(frame):,} rows, y has "
                             f"shape {target_values.shape}.")
     task = _task(estimator, target_values, task)
-    metric = scoring or metric or DEFAULT_METRIC[task]
-    allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
-    if metric not in allowed and (metric in REGRESSION_METRICS + CLASSIFICATION_METRICS
-                                  or not is_scorer(metric)):
-        raise InputError(f"metric {metric!r} does not fit a {task} task; use one of "
-                            f"{', '.join(allowed)}, or a scikit-learn scorer name such as "
-                            f"'r2' or 'roc_auc'.")
+    metric = check_metric(scoring or metric or DEFAULT_METRIC[task], task,
+                          "scoring" if scoring else "metric")
     labels = np.unique(target_values) if task == "classification" else None
     if task == "regression":
         target_values = target_values.astype(float)
