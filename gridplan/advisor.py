@@ -278,8 +278,11 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
         pooled.regularization_index, pooled.informative, pooled.evidence)
     floor_where = None if pooled is None else (pooled.model_index, _setting_label(
         runs[pooled.model_index], pooled.capacity_index, pooled.regularization_index))
-    each = [_advise_model(r, at=at if i == run.model else None, curves=grids[i], floor=floor,
-                          floor_where=floor_where, **options) for i, r in enumerate(runs)]
+    # `at` names a setting of the operating model: the given one, else the best measured
+    # (found with every model at its own best setting, then that model advised again at `at`)
+    each = [_advise_model(r, at=at if model is not None and i == run.model else None,
+                          curves=grids[i], floor=floor, floor_where=floor_where, **options)
+            for i, r in enumerate(runs)]
     if model is not None:
         here = run.model
     else:

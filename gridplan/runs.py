@@ -81,17 +81,16 @@ def open_run(run_dir: str | Path | Run, model: str | int | None = None) -> Run:
     run_dir = Path(run_dir)
     check_path_text(run_dir, "run folder")
     with Store.open_existing(run_dir) as store:
-        names = Run(run_dir, store.meta(), {}, None).model_names
-    index = model_index(names, model)
-    with Store.open_existing(run_dir, model=index) as store:
+        index = model_index(Run(run_dir, store.meta(), {}, None).model_names, model)
+        store.model = index            # the same store, seen through that model
         meta, axes = store.meta(), store.axes()
     config = None
     copy = run_dir / CONFIG_COPY
     if copy.is_file():
         import tomllib
         try:
-            config = parse_config(tomllib.loads(copy.read_text(encoding="utf-8")),
-                                  copy.resolve(), copy.read_text(encoding="utf-8"))
+            text = copy.read_text(encoding="utf-8")
+            config = parse_config(tomllib.loads(text), copy.resolve(), text)
         except (GridplanError, tomllib.TOMLDecodeError):
             config = None
     if config is not None and len(config.models) > 1:
