@@ -119,7 +119,7 @@ def _require_dask() -> None:
         import distributed  # noqa: F401
     except ImportError:
         raise ClusterError(f"running on a dask cluster needs dask and distributed; "
-                            f"install them with: {INSTALL_HINT}") from None
+                           f"install them with: {INSTALL_HINT}") from None
 
 
 def connect(address: str, *, timeout: float | None = None) -> "Client":
@@ -138,12 +138,12 @@ def connect(address: str, *, timeout: float | None = None) -> "Client":
         answer = probe_scheduler(address, timeout)
     except ValueError as exc:
         raise ClusterError(f"{address!r} is not a dask scheduler address ({exc}); "
-                            f"write it as tcp://HOST:PORT.") from None
+                           f"write it as tcp://HOST:PORT.") from None
     except (OSError, TimeoutError):
         raise ClusterError(unreachable) from None
     if not isinstance(answer, dict) or answer.get("type") != "Scheduler":
         raise ClusterError(f"{address} answered, but not as a dask scheduler; check the "
-                            f"address and port.")
+                           f"address and port.")
     try:
         return Client(address, timeout=timeout, set_as_default=False)
     except (OSError, TimeoutError):
@@ -180,7 +180,7 @@ def cluster_threads(client: "Client", address: str) -> int:
         client.wait_for_workers(1, timeout=WORKER_TIMEOUT)
     except TimeoutError:
         raise ClusterError(f"the dask scheduler at {address} has no workers after "
-                            f"{WORKER_TIMEOUT:g} s; start some with `dask worker {address}`.") from None
+                           f"{WORKER_TIMEOUT:g} s; start some with `dask worker {address}`.") from None
     return max(1, sum(client.nthreads().values()))
 
 
@@ -197,14 +197,14 @@ def check_workers_have_gridplan(client: "Client", address: str) -> None:
     for worker, theirs in sorted(found.items()):
         if isinstance(theirs, PackageNotFoundError):
             raise ClusterError(f"dask worker {worker} (scheduler {address}) does not have "
-                                f"gridplan installed; install gridplan {mine} on every worker.")
+                               f"gridplan installed; install gridplan {mine} on every worker.")
         if isinstance(theirs, BaseException):
             raise ClusterError(f"dask worker {worker} (scheduler {address}) cannot report its "
-                                f"gridplan version: {theirs}.")
+                               f"gridplan version: {theirs}.")
         if theirs != mine:
             raise ClusterError(f"dask worker {worker} has gridplan {theirs} but this machine "
-                                f"has {mine}; install the same version everywhere so the "
-                                f"numbers match.")
+                               f"has {mine}; install the same version everywhere so the "
+                               f"numbers match.")
 
 
 def _within(call: Callable[[], object], seconds: float, failure: str) -> object:

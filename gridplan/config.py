@@ -224,10 +224,10 @@ def _check_keys(path: Path, raw: dict[str, Any]) -> None:
         if section == "model" and isinstance(body, list):
             if not body or not all(isinstance(b, dict) for b in body):
                 raise InputError(f"{path.name}: model must be one [model] table or several "
-                                    f"[[model]] tables.")
+                                 f"[[model]] tables.")
             if len(body) > MAX_MODELS:
                 raise InputError(f"{path.name}: {len(body)} [[model]] tables, more than the "
-                                    f"{MAX_MODELS} one run may compare.")
+                                 f"{MAX_MODELS} one run may compare.")
             bodies = body
         elif not isinstance(body, dict):
             raise InputError(f"{path.name}: {section} must be a table like [{section}].")
@@ -312,8 +312,8 @@ def _read_axis(reader: _Reader, key: str, default_param: str | None,
         raise InputError(f"{where}.values must be a list, got {values!r}.")
     if len(values) > MAX_AXIS_VALUES:
         raise InputError(f"{where}.values holds {len(values):,} values, more than the "
-                            f"{MAX_AXIS_VALUES:,} an axis may have; space them out (a few dozen "
-                            f"on a log scale usually suffice).")
+                         f"{MAX_AXIS_VALUES:,} an axis may have; space them out (a few dozen "
+                         f"on a log scale usually suffice).")
     for v in values:
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
             raise InputError(f"{where}.values must hold finite numbers, got {v!r}.")
@@ -324,7 +324,7 @@ def _read_axis(reader: _Reader, key: str, default_param: str | None,
     more = table.get("more", "smaller" if param in SMALLER_MEANS_MORE[key] else "larger")
     if more not in ("larger", "smaller"):
         raise InputError(f"{where}.more must be \"larger\" or \"smaller\" (which values mean "
-                            f"more {key}), got {more!r}.")
+                         f"more {key}), got {more!r}.")
     ordered = tuple(values) if more == "larger" else tuple(reversed(values))
     return Axis(param=param, values=ordered, more=more)
 
@@ -332,7 +332,7 @@ def _read_axis(reader: _Reader, key: str, default_param: str | None,
 def _read_feature_sets(where: str, sets: Any) -> Axis:
     if isinstance(sets, list) and len(sets) > MAX_AXIS_VALUES:
         raise InputError(f"{where}.features holds {len(sets):,} sets, more than the "
-                            f"{MAX_AXIS_VALUES:,} an axis may have.")
+                         f"{MAX_AXIS_VALUES:,} an axis may have.")
     if not isinstance(sets, list) or not sets or not all(
             isinstance(s, list) and s and all(isinstance(c, str) for c in s) for s in sets):
         raise InputError(
@@ -381,7 +381,7 @@ def _resolve_aliases(path: Path, raw: dict[str, Any]) -> dict[str, Any]:
             if isinstance(one, dict) and alias in one:
                 if key in one:
                     raise InputError(f"{path.name}: [{section}] has both {key} and {alias}; "
-                                        f"keep one.")
+                                     f"keep one.")
                 one = {key if k == alias else k: v for k, v in one.items()}
             renamed.append(one)
         if body is not None:
@@ -418,7 +418,7 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     task = data.get("task", "str", default="regression")
     if task not in TASKS:
         raise InputError(f"{data.where('task')} must be one of {', '.join(TASKS)}, got {task!r}"
-                            f"{_suggest(task, list(TASKS))}.")
+                         f"{_suggest(task, list(TASKS))}.")
     features = data.get("features", "list")
     if features is not None:
         if not features or not all(isinstance(c, str) for c in features):
@@ -432,7 +432,7 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     if weights_column is not None and (weights_column == target or
                                        (features is not None and weights_column in features)):
         raise InputError(f"{data.where('weights')} {weights_column!r} is the target or a "
-                            f"feature; weights need a column of their own.")
+                         f"feature; weights need a column of their own.")
     missing = data.get("missing", "str", default="refuse")
     if missing not in ("refuse", "impute"):
         raise InputError(f"{data.where('missing')} must be \"refuse\" or \"impute\", got {missing!r}.")
@@ -449,13 +449,13 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
                 raise InputError(f"{sizes.where('values')} must hold positive whole numbers, got {v!r}.")
         if len(size_values) > MAX_SIZES:
             raise InputError(f"{sizes.where('values')} holds {len(size_values):,} sizes, more "
-                                f"than the {MAX_SIZES} a learning curve may have.")
+                             f"than the {MAX_SIZES} a learning curve may have.")
         _check_ascending(sizes.where("values"), size_values)
         size_values = tuple(size_values)
     size_count = sizes.get("count", "int", default=8)
     if not 1 <= size_count <= MAX_SIZES:
         raise InputError(f"{sizes.where('count')} must lie between 1 and {MAX_SIZES}, got "
-                            f"{size_count:,}; a learning curve needs a handful of sizes, not more.")
+                         f"{size_count:,}; a learning curve needs a handful of sizes, not more.")
     smallest = sizes.get("smallest", "int")
     if smallest is not None and smallest < 1:
         raise InputError(f"{sizes.where('smallest')} must be positive, got {smallest}.")
@@ -470,20 +470,20 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     time_column = resampling.get("time", "str")
     if groups_column is not None and time_column is not None:
         raise InputError(f"{resampling.where('groups')} and time cannot both be set; choose "
-                            f"grouped or forward-in-time splits.")
+                         f"grouped or forward-in-time splits.")
     for key, column in (("groups", groups_column), ("time", time_column)):
         if column is not None and column == target:
             raise InputError(f"{resampling.where(key)} names the target column {target!r}.")
         if column is not None and features is not None and column in features:
             raise InputError(f"{resampling.where(key)} {column!r} is also listed in [data] "
-                                f"features; a resampling column is not a feature.")
+                             f"features; a resampling column is not a feature.")
     if time_column is not None and repeats != 1:
         raise InputError(f"{resampling.where('repeats')} must be 1 with time = "
-                            f"{time_column!r}: forward-in-time splits have one order only.")
+                         f"{time_column!r}: forward-in-time splits have one order only.")
     seed = resampling.get("seed", "int", default=0)
     if not SEED_RANGE[0] <= seed <= SEED_RANGE[1]:
         raise InputError(f"{resampling.where('seed')} must lie between {SEED_RANGE[0]} and "
-                            f"{SEED_RANGE[1]:,} (2^32 - 1), got {seed:,}.")
+                         f"{SEED_RANGE[1]:,} (2^32 - 1), got {seed:,}.")
 
     metric = check_metric(goal.get("metric", "str", default=DEFAULT_METRIC[task]), task,
                           goal.where("metric"))
@@ -508,7 +508,7 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     for name, value in groups.items():
         if isinstance(value, bool) or not isinstance(value, (int, float)) or value < 0:
             raise InputError(f"{costs.where('feature_groups')}.{name} must be a non-negative "
-                                f"number, got {value!r}.")
+                             f"number, got {value!r}.")
     cost_obj = Costs(**cost_values, max_samples=max_samples,
                      feature_groups={k: float(v) for k, v in groups.items()})
 
@@ -517,7 +517,7 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     limit = run.get("fit_time_limit", "number")
     if limit is not None and not 0 < limit <= MAX_FIT_SECONDS:
         raise InputError(f"{run.where('fit_time_limit')} must be positive seconds up to "
-                            f"{MAX_FIT_SECONDS:,.0f}, got {limit:g}.")
+                         f"{MAX_FIT_SECONDS:,.0f}, got {limit:g}.")
     name = check_run_name(run.get("name", "str", default=path.stem), run.where("name"))
     max_fits = run.get("max_fits", "int", default=DEFAULT_MAX_FITS)
     if max_fits < 1:
@@ -549,7 +549,7 @@ def _read_models(path: Path, raw: Any) -> tuple[ModelConfig, ...]:
     for name in names:
         if names.count(name) > 1:
             raise InputError(f"{path.name}: two [[model]] tables are named {name!r}; give "
-                                f"each its own name.")
+                             f"each its own name.")
     return tuple(models)
 
 
@@ -559,10 +559,10 @@ def _read_model(model: "_Reader", several: bool) -> ModelConfig:
     estimator = model.get("estimator", "str")
     if (family is None) == (estimator is None):
         raise InputError(f"{_where(model.path, model.section)} needs exactly one of family = "
-                            f"\"poly-ridge\"|\"tree\" or estimator = \"sklearn....\".")
+                         f"\"poly-ridge\"|\"tree\" or estimator = \"sklearn....\".")
     if family is not None and family not in FAMILIES:
         raise InputError(f"{model.where('family')} must be one of {', '.join(FAMILIES)}, "
-                            f"got {family!r}{_suggest(family, list(FAMILIES))}.")
+                         f"got {family!r}{_suggest(family, list(FAMILIES))}.")
     params = model.get("params", "table", default={})
     capacity = _read_axis(model, "capacity", DEFAULT_CAPACITY_PARAM.get(family or ""),
                           required=True)
@@ -571,7 +571,7 @@ def _read_model(model: "_Reader", several: bool) -> ModelConfig:
     for axis_name, axis in (("capacity", capacity), ("regularization", regularization)):
         if axis.param and axis.param in params:
             raise InputError(f"{model.where('params')} sets {axis.param!r}, which the "
-                                f"{axis_name} axis already varies.")
+                             f"{axis_name} axis already varies.")
     if family is not None and capacity.param is not None and capacity.feature_sets is None:
         _check_family_axis(model.where("capacity"), family, capacity)
     if family is not None and regularization.param is not None:
@@ -581,7 +581,7 @@ def _read_model(model: "_Reader", several: bool) -> ModelConfig:
         name = family or estimator.rsplit(".", 1)[-1]
     elif not name or len(name) > MAX_MODEL_NAME or not set(name) <= MODEL_NAME_CHARS:
         raise InputError(f"{model.where('name')} must be 1 to {MAX_MODEL_NAME} letters, digits, "
-                            f"'-', '_' or '.', got {name!r}.")
+                         f"'-', '_' or '.', got {name!r}.")
     return ModelConfig(name=name, family=family, estimator=estimator, params=dict(params),
                        capacity=capacity, regularization=regularization)
 
@@ -590,7 +590,7 @@ def check_jobs(jobs: int, where: str) -> int:
     """A worker count: -1 (all cores) or 1 .. MAX_JOBS."""
     if jobs == 0 or abs(jobs) > MAX_JOBS:
         raise InputError(f"{where} must be -1 (all cores) or a count from 1 to {MAX_JOBS:,}, "
-                            f"got {jobs:,}.")
+                         f"got {jobs:,}.")
     return jobs
 
 
@@ -601,7 +601,7 @@ def check_run_name(name: str, where: str) -> str:
     if not name.isprintable():
         bad = next(ch for ch in name if not ch.isprintable())
         raise InputError(f"{where} must hold printable characters only; {name!r} contains "
-                            f"U+{ord(bad):04X}.")
+                         f"U+{ord(bad):04X}.")
     return name
 
 
@@ -614,17 +614,17 @@ def _check_grid_size(path: Path, models: tuple[ModelConfig, ...],
         if count > MAX_SETTINGS:
             where = "[model]" if len(models) == 1 else f"[[model]] {m.name!r}"
             raise InputError(f"{path.name}: {where} the grid has {count:,} settings "
-                                f"({len(m.capacity):,} capacity x {len(m.regularization):,} "
-                                f"regularization values), more than the {MAX_SETTINGS:,} whose "
-                                f"curves gridplan can estimate; use fewer values on an axis.")
+                             f"({len(m.capacity):,} capacity x {len(m.regularization):,} "
+                             f"regularization values), more than the {MAX_SETTINGS:,} whose "
+                             f"curves gridplan can estimate; use fewer values on an axis.")
     settings = sum(len(m.capacity) * len(m.regularization) for m in models)
     n_sizes = len(size_values) if size_values is not None else size_count
     fits = settings * n_sizes * folds * repeats
     if fits > max_fits:
         raise InputError(f"{path.name}: the grid asks for {fits:,} fits ({settings:,} "
-                            f"settings x {n_sizes} sizes x {folds:,} folds x {repeats:,} repeats), "
-                            f"above the limit of {max_fits:,}; shrink an axis, the sizes, folds "
-                            f"or repeats, or raise [run] max_fits if you mean it.")
+                         f"settings x {n_sizes} sizes x {folds:,} folds x {repeats:,} repeats), "
+                         f"above the limit of {max_fits:,}; shrink an axis, the sizes, folds "
+                         f"or repeats, or raise [run] max_fits if you mean it.")
 
 
 def _check_family_axis(where: str, family: str, axis: Axis) -> None:
@@ -634,13 +634,13 @@ def _check_family_axis(where: str, family: str, axis: Axis) -> None:
                       "max_leaf_nodes"}}[family]
     if axis.param not in known:
         raise InputError(f"{where}.param {axis.param!r} is not a parameter of the {family} "
-                            f"family{_suggest(axis.param, sorted(known))}; it has "
-                            f"{', '.join(sorted(known))}.")
+                         f"family{_suggest(axis.param, sorted(known))}; it has "
+                         f"{', '.join(sorted(known))}.")
     integer_params = {"degree", "max_depth", "min_samples_leaf", "min_samples_split",
                       "max_leaf_nodes"}
     for v in axis.values:
         if axis.param in integer_params and (not isinstance(v, int) or v < 1):
             raise InputError(f"{where}.values for {axis.param!r} must be positive whole "
-                                f"numbers, got {v!r}.")
+                             f"numbers, got {v!r}.")
         if axis.param in ("alpha", "ccp_alpha") and v < 0:
             raise InputError(f"{where}.values for {axis.param!r} must not be negative, got {v!r}.")

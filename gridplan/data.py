@@ -62,11 +62,11 @@ def read_table(path: Path) -> pd.DataFrame:
             duplicated = sorted({n for n in names if names.count(n) > 1})
             if duplicated:
                 raise InputError(f"data file {path.name} has duplicate column names: "
-                                    f"{', '.join(duplicated)}.")
+                                 f"{', '.join(duplicated)}.")
             frame = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",")
         else:
             raise InputError(f"data file {path.name} must be .csv, .tsv or .parquet, "
-                                f"got {suffix or 'no extension'}.")
+                             f"got {suffix or 'no extension'}.")
     except GridplanError:
         raise
     except pd.errors.EmptyDataError:
@@ -90,7 +90,7 @@ def load_dataset(config: Config) -> Dataset:
     name = path.name
     if config.target not in frame.columns:
         raise InputError(f"{name} has no target column {config.target!r}; columns are "
-                            f"{', '.join(frame.columns[:12])}{' ...' if frame.shape[1] > 12 else ''}.")
+                         f"{', '.join(frame.columns[:12])}{' ...' if frame.shape[1] > 12 else ''}.")
     resampling = {}
     if config.weights_column is not None:
         weights = _weights(frame, config.weights_column, name)
@@ -103,7 +103,7 @@ def load_dataset(config: Config) -> Dataset:
             raise InputError(f"{name} has no column {column!r} named in [resampling] {key}.")
         if frame[column].isna().any():
             raise InputError(f"{name}: the [resampling] {key} column {column!r} has "
-                                f"{int(frame[column].isna().sum())} missing values.")
+                             f"{int(frame[column].isna().sum())} missing values.")
         resampling[key] = frame[column].to_numpy()
         frame = frame.drop(columns=[column])      # it sets the splits; it is no feature
     wanted = _feature_columns(config, frame)
@@ -112,22 +112,22 @@ def load_dataset(config: Config) -> Dataset:
         raise InputError(f"{name}: the target column {config.target!r} is entirely missing.")
     if y_raw.isna().any():
         raise InputError(f"{name}: the target column {config.target!r} has "
-                            f"{int(y_raw.isna().sum())} missing values; drop or fill those rows.")
+                         f"{int(y_raw.isna().sum())} missing values; drop or fill those rows.")
     X = frame[list(wanted)].copy()
     missing = X.isna().sum()
     missing = missing[missing > 0]
     if len(missing) and config.missing != "impute":
         listed = ", ".join(f"{c} ({n})" for c, n in missing.items())
         raise InputError(f"{name} has missing feature values in {listed}; fill them or set "
-                            f"missing = \"impute\" in [data].")
+                         f"missing = \"impute\" in [data].")
     numeric = tuple(c for c in wanted if is_numeric_dtype(X[c]) and not X[c].dtype == bool)
     infinite = {c: int(np.isinf(X[c].to_numpy(dtype=float)).sum()) for c in numeric}
     infinite = {c: n for c, n in infinite.items() if n}
     if infinite:
         listed = ", ".join(f"{c} ({n})" for c, n in infinite.items())
         raise InputError(f"{name} has infinite feature values in {listed}; replace them with "
-                            f"finite numbers or leave the cells empty (missing = \"impute\" "
-                            f"fills only empty cells).")
+                         f"finite numbers or leave the cells empty (missing = \"impute\" "
+                         f"fills only empty cells).")
     categorical = tuple(c for c in wanted if c not in numeric)
     for c in numeric:
         X[c] = X[c].astype(float)
@@ -142,13 +142,13 @@ def load_dataset(config: Config) -> Dataset:
     if config.task == "regression":
         if not is_numeric_dtype(y_raw) or y_raw.dtype == bool:
             raise InputError(f"{name}: the target column {config.target!r} is not numeric, "
-                                f"but the task is regression (set task = \"classification\"?).")
+                             f"but the task is regression (set task = \"classification\"?).")
         y = y_raw.to_numpy(dtype=float)
         if not np.isfinite(y).all():
             raise InputError(f"{name}: the target column {config.target!r} has infinite values.")
         if np.all(y == y[0]):
             raise InputError(f"{name}: the target column {config.target!r} is constant (every "
-                                f"value is {y[0]:g}), so there is nothing to learn.")
+                             f"value is {y[0]:g}), so there is nothing to learn.")
     else:
         y = y_raw.to_numpy()
         if not is_numeric_dtype(y_raw):
@@ -156,12 +156,12 @@ def load_dataset(config: Config) -> Dataset:
         labels, counts = np.unique(y, return_counts=True)
         if len(labels) < 2:
             raise InputError(f"{name}: the target column {config.target!r} has a single class "
-                                f"({labels[0]!r}); classification needs at least two.")
+                             f"({labels[0]!r}); classification needs at least two.")
         rare = [(lab, n) for lab, n in zip(labels, counts) if n < config.folds]
         if rare:
             lab, n = rare[0]
             raise InputError(f"{name}: class {lab!r} of {config.target!r} has only {n} rows, "
-                                f"fewer than the {config.folds} folds.")
+                             f"fewer than the {config.folds} folds.")
     return Dataset(X=X, y=y, numeric=numeric, categorical=categorical, labels=labels,
                    fingerprint=file_fingerprint(path), warnings=tuple(notes),
                    groups=resampling.get("groups"), time=resampling.get("time"),
@@ -179,7 +179,7 @@ def _weights(frame: pd.DataFrame, column: str, name: str) -> np.ndarray:
     bad = int((~np.isfinite(weights) | (weights < 0)).sum())
     if bad:
         raise InputError(f"{name}: the weights column {column!r} has {bad} missing, "
-                            f"negative or infinite values; weights must be finite and >= 0.")
+                         f"negative or infinite values; weights must be finite and >= 0.")
     if not weights.any():
         raise InputError(f"{name}: the weights column {column!r} is zero everywhere.")
     return weights

@@ -78,11 +78,11 @@ def import_estimator(path: str, allow_any_import: bool) -> type:
     """Import an estimator class by dotted path, refusing non-scikit-learn code by default."""
     if not path.startswith("sklearn.") and not allow_any_import:
         raise InputError(f"estimator {path!r} is outside scikit-learn; gridplan runs only "
-                            f"sklearn.* estimators unless you pass --allow-any-estimator.")
+                         f"sklearn.* estimators unless you pass --allow-any-estimator.")
     module_name, _, attr = path.rpartition(".")
     if not module_name:
         raise InputError(f"estimator {path!r} must be a dotted import path such as "
-                            f"\"sklearn.ensemble.RandomForestRegressor\".")
+                         f"\"sklearn.ensemble.RandomForestRegressor\".")
     try:
         module = importlib.import_module(module_name)
     except ImportError as exc:
@@ -122,7 +122,7 @@ def check_takes_weights(plan: ModelPlan, where: str) -> None:
         final = final.steps[-1][1]
     if not has_fit_parameter(final, "sample_weight"):
         raise InputError(f"{where}: {type(final).__name__} does not take sample_weight in "
-                            f"fit, so per-row weights cannot be used with it.")
+                         f"fit, so per-row weights cannot be used with it.")
 
 
 def _final_estimator(plan: ModelPlan) -> Any:
@@ -152,11 +152,11 @@ def _check_parameters(config: Config, plan: ModelPlan) -> None:
                          ("regularization", plan.regularization_param)):
         if param is not None and param not in available:
             raise InputError(f"{name}: [model] {label}.param {param!r} is not a parameter of "
-                                f"{config.model_name}{_suggest(param, sorted(available))}.")
+                             f"{config.model_name}{_suggest(param, sorted(available))}.")
     for param in plan.params:
         if param not in available:
             raise InputError(f"{name}: [model] params sets {param!r}, which "
-                                f"{config.model_name} does not have{_suggest(param, sorted(available))}.")
+                             f"{config.model_name} does not have{_suggest(param, sorted(available))}.")
     # The library checks each parameter on its own, so every value of each
     # axis is checked once (beside the other axis's first value), not every pair.
     settings = ([(ci, 0) for ci in range(len(plan.capacity_values))]
@@ -167,7 +167,7 @@ def _check_parameters(config: Config, plan: ModelPlan) -> None:
     except (TypeError, ValueError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"{name}: [model] values are not accepted by {config.model_name}: "
-                            f"{first}") from None
+                         f"{first}") from None
 
 
 #: Copies of the widest feature table one poly fit holds at once (the expanded

@@ -47,21 +47,21 @@ def _axis(name: str, given: Any, estimator: Any, X: pd.DataFrame) -> Axis:
             close = [k for k in known if k.endswith("__" + param) or k == param.split("__")[-1]]
             hint = f" (did you mean {close[0]!r}?)" if close else ""
             raise InputError(f"{name} parameter {param!r} is not a parameter of "
-                                f"{type(estimator).__name__}{hint}.")
+                             f"{type(estimator).__name__}{hint}.")
         return Axis(param=param, values=tuple(values))
     sets = [tuple(s) for s in given] if isinstance(given, (list, tuple)) else None
     if name == "capacity" and sets and all(isinstance(s, tuple) and s for s in sets):
         for i in range(1, len(sets)):
             if not set(sets[i - 1]) < set(sets[i]):
                 raise InputError(f"capacity feature sets must be nested; set {i + 1} "
-                                    f"{list(sets[i])!r} does not extend {list(sets[i - 1])!r}.")
+                                 f"{list(sets[i])!r} does not extend {list(sets[i - 1])!r}.")
         absent = [c for c in sets[-1] if c not in X.columns]
         if absent:
             raise InputError(f"capacity feature set names {absent[0]!r}, which X does not have.")
         return Axis(param=None, values=tuple(range(1, len(sets) + 1)), feature_sets=tuple(sets))
     raise InputError(f"{name} must be (parameter name, values)"
-                        + (" or a list of nested feature sets" if name == "capacity" else "")
-                        + f", got {given!r}.")
+                     + (" or a list of nested feature sets" if name == "capacity" else "")
+                     + f", got {given!r}.")
 
 
 def _frame(X: Any) -> pd.DataFrame:
@@ -85,7 +85,7 @@ def _sample_weight(weights: Any, n_rows: int) -> np.ndarray | None:
     values = np.asarray(weights, dtype=float)
     if values.ndim != 1 or len(values) != n_rows:
         raise InputError(f"sample_weight must give one weight per row: X has {n_rows:,} rows, "
-                            f"sample_weight has shape {values.shape}.")
+                         f"sample_weight has shape {values.shape}.")
     if not np.isfinite(values).all() or (values < 0).any() or not values.any():
         raise InputError("sample_weight must be finite, non-negative and not all zero.")
     return values
@@ -139,7 +139,7 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
     target_values = np.asarray(y)
     if target_values.ndim != 1 or len(target_values) != len(frame):
         raise InputError(f"y must be one value per row of X: X has {len(frame):,} rows, y has "
-                            f"shape {target_values.shape}.")
+                         f"shape {target_values.shape}.")
     task = _task(estimator, target_values, task)
     metric = check_metric(scoring or metric or DEFAULT_METRIC[task], task,
                           "scoring" if scoring else "metric")
@@ -192,7 +192,7 @@ def _config(model: ModelConfig, *, metric: str, task: str, target: float | None,
         unknown = set(costs) - {f.name for f in dataclasses.fields(Costs)}
         if unknown:
             raise InputError(f"costs has unknown key {sorted(unknown)[0]!r}; known keys are "
-                                f"{', '.join(f.name for f in dataclasses.fields(Costs))}.")
+                             f"{', '.join(f.name for f in dataclasses.fields(Costs))}.")
         costs = Costs(**costs)
     memory = Path(MEMORY)
     return Config(source=memory, text="", data_path=memory, target="y", task=task,
@@ -218,11 +218,11 @@ def _folds(cv: Any, X: pd.DataFrame, y: np.ndarray, groups: Any, task: str, repe
         values = np.asarray(values)
         if values.ndim != 1 or len(values) != len(X):
             raise InputError(f"{name} must give one value per row: X has {len(X):,} rows, "
-                                f"{name} has shape {values.shape}.")
+                             f"{name} has shape {values.shape}.")
         per_row[name] = values
     if "groups" in per_row and "time" in per_row:
         raise InputError("groups and time cannot both be given; choose grouped or "
-                            "forward-in-time splits.")
+                         "forward-in-time splits.")
     if isinstance(cv, int) and not isinstance(cv, bool):
         if cv < 2:
             raise InputError(f"cv must be at least 2 folds, got {cv}.")
@@ -230,7 +230,7 @@ def _folds(cv: Any, X: pd.DataFrame, y: np.ndarray, groups: Any, task: str, repe
                           repeats=repeats, seed=seed, **per_row)
     if "time" in per_row:
         raise InputError("time sets forward-in-time splits itself; give cv as a number of "
-                            "folds, not a splitter.")
+                         "folds, not a splitter.")
     if not hasattr(cv, "split"):
         raise InputError(f"cv must be a number of folds or a scikit-learn splitter, got {cv!r}.")
     out = []
@@ -257,7 +257,7 @@ def _sizes(folds, train_sizes, smallest, labels) -> tuple[int, ...]:
                             where="train_sizes")
     if labels is not None and sizes[0] < len(labels):
         raise InputError(f"the smallest training size {sizes[0]} is below the number of "
-                            f"classes ({len(labels)}).")
+                         f"classes ({len(labels)}).")
     return sizes
 
 
@@ -343,7 +343,7 @@ class Grid:
         unknown = sorted(set(values) - known)
         if unknown:
             raise InputError(f"costs has unknown key {unknown[0]!r}; known keys are "
-                                f"{', '.join(sorted(known))}.")
+                             f"{', '.join(sorted(known))}.")
         return advise(self.run, target=target, confidence=confidence, at=at,
                       curves=self._fits(), **values)
 
@@ -369,7 +369,7 @@ class Grid:
             refuse_run_file(self.run.run_dir, path, self.run.run_dir / "report.html")
         if path.is_dir():
             raise InputError(f"cannot write the report to {path}: it is a folder; give a file "
-                                f"name such as {path / 'report.html'}.")
+                             f"name such as {path / 'report.html'}.")
         return write_inputs(gather_inputs(self.run, target=target, confidence=confidence), path)
 
     def _fits(self):

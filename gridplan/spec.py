@@ -139,9 +139,9 @@ def resolve_run(config: Config, *, allow_any_import: bool = False) -> RunSpec:
     for other in specs[1:]:
         if other.dataset.n_rows != first.dataset.n_rows or other.sizes != first.sizes:
             raise InputError(f"{config.source.name}: [[model]] {other.model_label!r} sees "
-                                f"{other.dataset.n_rows:,} rows but {first.model_label!r} sees "
-                                f"{first.dataset.n_rows:,}; models of one run must be measured "
-                                f"on the same rows.")
+                             f"{other.dataset.n_rows:,} rows but {first.model_label!r} sees "
+                             f"{first.dataset.n_rows:,}; models of one run must be measured "
+                             f"on the same rows.")
     return RunSpec(config, specs)
 
 
@@ -157,7 +157,7 @@ def resolve(config: Config, *, allow_any_import: bool = False) -> GridSpec:
     classification = config.task == "classification"
     if dataset.n_rows < 2 * config.folds:
         raise InputError(f"{config.data_path.name} has {dataset.n_rows} rows, too few for "
-                            f"{config.folds} folds (need at least {2 * config.folds}).")
+                         f"{config.folds} folds (need at least {2 * config.folds}).")
     folds = make_folds(dataset.y, classification=classification, folds=config.folds,
                        repeats=config.repeats, seed=config.seed, groups=dataset.groups,
                        time=dataset.time)
@@ -166,7 +166,7 @@ def resolve(config: Config, *, allow_any_import: bool = False) -> GridSpec:
                         smallest=config.smallest_size, where=f"{config.source.name}: [sizes]")
     if classification and sizes[0] < len(dataset.labels):
         raise InputError(f"{config.source.name}: [sizes] smallest training size {sizes[0]} is "
-                            f"below the number of classes ({len(dataset.labels)}).")
+                         f"below the number of classes ({len(dataset.labels)}).")
     check_polynomial_memory(plan, dataset, sizes[-1], config.source.name)
     if dataset.weights is not None:
         check_takes_weights(plan, f"{config.source.name}: [data] weights")

@@ -59,7 +59,7 @@ def grouped_folds(y: np.ndarray, groups: np.ndarray, *, classification: bool, fo
     n_groups = len(np.unique(groups))
     if n_groups < folds:
         raise InputError(f"grouped resampling needs at least as many groups as folds: "
-                            f"{n_groups} groups for {folds} folds.")
+                         f"{n_groups} groups for {folds} folds.")
     out = []
     for repeat in range(repeats):
         kind = StratifiedGroupKFold if classification else GroupKFold
@@ -83,7 +83,7 @@ def time_folds(time: np.ndarray, *, folds: int, repeats: int = 1) -> list[Fold]:
     from sklearn.model_selection import TimeSeriesSplit
     if repeats != 1:
         raise InputError(f"forward-in-time splits have one order only; set repeats = 1 "
-                            f"(got {repeats}).")
+                         f"(got {repeats}).")
     order = np.argsort(np.asarray(time), kind="stable")
     out = []
     for fold, (train, test) in enumerate(TimeSeriesSplit(n_splits=folds).split(order)):
@@ -112,7 +112,7 @@ def size_ladder(full: int, *, values: tuple[int, ...] | None, count: int,
     if values is not None:
         if values[-1] > full:
             raise InputError(f"{where} values asks for {values[-1]} training rows, but a "
-                                f"training fold holds only {full}.")
+                             f"training fold holds only {full}.")
         return tuple(int(v) for v in values)
     start = smallest if smallest is not None else max(10, full // 50)
     if start > full:
