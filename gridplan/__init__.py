@@ -13,8 +13,8 @@ __all__ = ["measure", "Grid", "open_grid", "open_run", "advise", "GridplanError"
 #: public name -> (module, name there); `open_run` gives a Grid (gridplan.api.open_run a Run).
 _HOMES = {"measure": ("gridplan.grid", "measure"), "Grid": ("gridplan.grid", "Grid"),
           "open_grid": ("gridplan.grid", "open_grid"), "open_run": ("gridplan.grid", "open_grid"),
-          "advise": ("gridplan.advisor", "advise"),
-          "GridplanError": ("gridplan.errors", "GridplanError")}
+          "advise": ("gridplan.deciding.advisor", "advise"),
+          "GridplanError": ("gridplan.common.errors", "GridplanError")}
 
 
 def __getattr__(name: str):

@@ -12,22 +12,19 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import TYPE_CHECKING, Iterator
 
-from gridplan.checks import DEFAULT_BOOT, check_path_text
-from gridplan.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
-from gridplan.errors import GridplanError
-from gridplan.runs import (  # noqa: F401 (public here as before)
+from gridplan.common.checks import DEFAULT_BOOT, check_path_text, check_target
+from gridplan.common.errors import GridplanError
+from gridplan.measuring.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
+from gridplan.measuring.runs import (
     EXPORTS_KEY,
     LOCK_NAME,
-    RUN_FILES,
-    Run,
-    model_index,
     open_run,
     refuse_run_file,
 )
-from gridplan.store import CONFIG_COPY, STORE_NAME, Store
+from gridplan.measuring.store import CONFIG_COPY, STORE_NAME, Store
 
 if TYPE_CHECKING:   # the grid side (scikit-learn) is imported only where a grid is resolved
-    from gridplan.spec import GridSpec, RunSpec
+    from gridplan.measuring.spec import GridSpec, RunSpec
 
 DEFAULT_OUTPUTS = Path("outputs")
 
@@ -39,7 +36,7 @@ def default_run_dir(config: Config) -> Path:
 
 def effective_jobs(config: Config, jobs: int | None) -> int:
     """Worker count: the option, else the config; -1 means every core."""
-    from gridplan.config import check_jobs
+    from gridplan.measuring.config import check_jobs
     n = check_jobs(config.jobs if jobs is None else jobs, "jobs")
     return max(1, os.cpu_count() or 1) if n < 0 else n
 
@@ -122,7 +119,7 @@ def _model_meta(spec: GridSpec) -> dict:
 
 
 def _difference(old: dict, new: dict) -> str:
-    from gridplan.spec import identity_difference
+    from gridplan.measuring.spec import identity_difference
     return identity_difference(old, new)
 
 
@@ -136,8 +133,8 @@ def run(config: Config | str | Path, *, out: str | Path | None = None, jobs: int
         scheduler: str | None = None, allow_any_estimator: bool = False,
         progress=None, spec: RunSpec | GridSpec | None = None) -> Path:
     """Evaluate a config's grid (every model table), resuming an earlier partial run in the same folder."""
-    from gridplan.runner import run_grid
-    from gridplan.spec import resolve_run
+    from gridplan.measuring.runner import run_grid
+    from gridplan.measuring.spec import resolve_run
     if not isinstance(config, Config):
         config = load_config(config)
     spec = as_run_spec(spec or resolve_run(config, allow_any_import=allow_any_estimator))
@@ -152,7 +149,7 @@ def run(config: Config | str | Path, *, out: str | Path | None = None, jobs: int
             step = _offset_progress(progress, done_before, spec.n_fits)
             try:
                 if address:
-                    from gridplan.cluster import run_on_cluster
+                    from gridplan.measuring.cluster import run_on_cluster
                     run_on_cluster(model, store, address, progress=step)
                 else:
                     run_grid(model, store, jobs=effective_jobs(config, jobs), progress=step)
@@ -164,7 +161,7 @@ def run(config: Config | str | Path, *, out: str | Path | None = None, jobs: int
 
 def as_run_spec(spec: RunSpec | GridSpec) -> RunSpec:
     """A one-model GridSpec as a RunSpec; a RunSpec as it is."""
-    from gridplan.spec import GridSpec, RunSpec
+    from gridplan.measuring.spec import GridSpec, RunSpec
     return RunSpec(spec.config, (spec,)) if isinstance(spec, GridSpec) else spec
 
 
@@ -193,7 +190,7 @@ def export_cells(run_dir: str | Path, out: str | Path, *, force: bool = False) -
     replaced; any other existing file only when this run exported it before,
     or with `force`.
     """
-    from gridplan.data import file_fingerprint
+    from gridplan.measuring.data import file_fingerprint
     run_dir, out = Path(run_dir), Path(out)
     run = open_run(run_dir)
     target = refuse_run_file(run_dir, out, run_dir / "cells.csv")
@@ -241,29 +238,29 @@ def check(config: Config | str | Path, *, allow_any_estimator: bool = False) -> 
     """Validate a config against its data and return the resolved grid of every model table."""
     if not isinstance(config, Config):
         config = load_config(config)
-    from gridplan.spec import resolve_run
+    from gridplan.measuring.spec import resolve_run
     return resolve_run(config, allow_any_import=allow_any_estimator)
 
 
 def fit_curves(run_dir: str | Path, *, n_boot: int = DEFAULT_BOOT, seed: int = 0,
                model: str | int | None = None):
-    """Fit a learning curve per setting of a run's model (see gridplan.curves.fit_grid)."""
-    from gridplan.curvestore import run_curves
+    """Fit a learning curve per setting of a run's model (see gridplan.deciding.gridfit.fit_grid)."""
+    from gridplan.deciding.curvestore import run_curves
     return run_curves(run_dir, n_boot=n_boot, seed=seed, model=model)
 
 
 def curves_report(run_dir: str | Path, *, target: float | None = None,
                   confidence: float | None = None, n_boot: int = DEFAULT_BOOT, seed: int = 0,
                   model: str | int | None = None):
-    """Per-setting curve summary of one model (a gridplan.results.CurvesSummary) (family, noise floor, forecasts, samples needed)."""
-    from gridplan.curves import curves_summary
+    """Per-setting curve summary of one model (a gridplan.common.results.CurvesSummary) (family, noise floor, forecasts, samples needed)."""
+    from gridplan.deciding.gridfit import curves_summary
     run = open_run(run_dir, model=model)
     if target is None and run.config is not None:
         target = run.config.target_error
     if confidence is None:
         confidence = run.config.confidence if run.config is not None else 0.9
-    if target is not None and target <= 0:
-        raise GridplanError(f"target must be a positive error, got {target:g}.")
+    if target is not None:
+        check_target(target)
     fits = fit_curves(run_dir, n_boot=n_boot, seed=seed, model=run.model)
     import dataclasses
     summary = curves_summary(fits, target=target, confidence=confidence)

@@ -14,12 +14,12 @@ from pathlib import Path
 import numpy as np
 
 from gridplan import api
-from gridplan.checks import DEFAULT_BOOT
-from gridplan.config import Config
-from gridplan.errors import GridplanError
-from gridplan.jsonable import plain as _plain
-from gridplan.spec import GridSpec
-from gridplan.splits import size_ladder, smallest_training_fold
+from gridplan.common.checks import DEFAULT_BOOT
+from gridplan.common.errors import GridplanError
+from gridplan.common.jsonable import plain as _plain
+from gridplan.measuring.config import Config
+from gridplan.measuring.spec import GridSpec
+from gridplan.measuring.splits import size_ladder, smallest_training_fold
 
 MIN_CURVE_SIZES = 3
 
@@ -51,9 +51,9 @@ def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None =
              jobs: int | None = None, n_boot: int = DEFAULT_BOOT, seed: int = 0,
              progress=None, allow_any_estimator: bool = False):
     """Run the backtest grid (resumably) and compare forecasts with measurements (a results.Backtest)."""
-    from gridplan.curves import fit_grid
-    from gridplan.results import Backtest
-    from gridplan.spec import RunSpec, resolve_run
+    from gridplan.common.results import Backtest
+    from gridplan.deciding.gridfit import fit_grid
+    from gridplan.measuring.spec import RunSpec, resolve_run
     whole = resolve_run(config, allow_any_import=allow_any_estimator)
     spec = RunSpec(config, tuple(backtest_spec(m, fraction) for m in whole.models))
     run_dir = Path(out) if out is not None else api.default_run_dir(config).with_name(
@@ -96,33 +96,3 @@ def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None =
         "coverage": float(np.mean([r["inside_band"] for r in rows])),
         "unfitted": unfitted, "calibration": calibrations[whole.names[0]],
         "models": list(whole.names), "calibrations": calibrations}))
-
-
-def render_backtest(result: dict) -> str:
-    """Plain-text table of a backtest."""
-    lines = [f"backtest: curves fitted on sizes {', '.join(map(str, result['fitted_sizes']))}; "
-             f"forecast at {result['full_size']} rows vs measured ({result['metric']})",
-             f"{'capacity':>10} {'regularization':>14} {'family':>6} {'predicted':>10} "
-             f"{'band':>21} {'measured':>10} {'rel err':>8}  in band"]
-    several = len(result.get("models") or []) > 1
-    shown = None
-    for r in result["rows"]:
-        band = f"[{r['low']:.3g}, {r['high']:.3g}]"
-        if several and r["model"] != shown:
-            lines.append(f"model {r['model']}")
-            shown = r["model"]
-        rel = "-" if r["rel_error"] is None else f"{r['rel_error']:.1%}"
-        lines.append(f"{r['capacity']:>10} {r['regularization']:>14} {r['family']:>6} "
-                     f"{r['predicted']:>10.3g} {band:>21} {r['measured']:>10.3g} {rel:>8}  "
-                     f"{'yes' if r['inside_band'] else 'no'}")
-    from gridplan.calibration import Calibration
-    for name, calibration in (result.get("calibrations") or {}).items():
-        if calibration:
-            whose = f" of model {name}" if several else ""
-            lines.append(f"calibration from the fitted sizes{whose}: "
-                         f"{Calibration(**calibration).sentence()}")
-    median = result["median_abs_rel_error"]
-    lines.append(f"median |relative error| {'-' if median is None else f'{median:.1%}'}; "
-                 f"measured value inside the {result['confidence']:.0%} band for "
-                 f"{result['coverage']:.0%} of {len(result['rows'])} settings")
-    return "\n".join(lines)

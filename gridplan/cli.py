@@ -13,8 +13,8 @@ from typing import Callable, Optional
 
 import typer
 
-from gridplan.checks import DEFAULT_BOOT
-from gridplan.wording import plural
+from gridplan.common.checks import DEFAULT_BOOT
+from gridplan.common.wording import plural
 
 app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="Measure a capacity x regularisation x data-size grid, forecast its "
@@ -37,7 +37,7 @@ def friendly(command: Callable) -> Callable:
     def wrapper(*args, **kwargs):
         import warnings
 
-        from gridplan.errors import GridplanError
+        from gridplan.common.errors import GridplanError
         warnings.showwarning = _show_warning
         try:
             return command(*args, **kwargs)
@@ -86,7 +86,7 @@ def _describe(spec, run_dir: Path) -> str:
 
 
 def _model_lines(model, named: bool) -> list[tuple[str, str]]:
-    from gridplan.runner import fast_path_kind
+    from gridplan.measuring.runner import fast_path_kind
     c = model.config
     cap, reg = c.capacity, c.regularization
     cap_text = (f"feature sets: {', '.join(cap.labels)}" if cap.feature_sets
@@ -164,7 +164,7 @@ def _duration(seconds: float) -> str:
 
 def _estimate_line(spec, jobs: int, done: list[set] | None = None) -> tuple[float, str]:
     """Time one unfinished task at the largest size per model and scale it to the rest."""
-    from gridplan.runner import estimate_seconds
+    from gridplan.measuring.runner import estimate_seconds
     seconds, probe = 0.0, 0.0
     for index, model in enumerate(spec.models):
         more, taken = estimate_seconds(model, jobs, done[index] if done else None)
@@ -177,7 +177,7 @@ def _estimate_line(spec, jobs: int, done: list[set] | None = None) -> tuple[floa
 
 def _finished_keys(run_dir: Path, models: int = 1) -> list[set]:
     """Per model table, the fits an earlier run in this folder already stored."""
-    from gridplan.store import STORE_NAME, Store
+    from gridplan.measuring.store import STORE_NAME, Store
     if not (Path(run_dir) / STORE_NAME).is_file():
         return [set() for _ in range(models)]
     out = []
@@ -255,7 +255,8 @@ def demo(out: Path = typer.Option(Path("outputs/demo"), "--out", help="Folder fo
         api.run(spec.config, out=out / "run", jobs=jobs, progress=progress, spec=spec)
     cells = api.open_run(out / "run").cells()
     typer.echo(_demo_summary(cells, NOISE_FLOOR_MSE))
-    from gridplan.report import REPORT_NAME, gather_inputs, write_inputs
+    from gridplan.showing.gather import gather_inputs
+    from gridplan.showing.report import REPORT_NAME, write_inputs
     with _busy("fitting learning curves and writing the report"):
         inputs = gather_inputs(out / "run")
         path = write_inputs(inputs, out / "run" / REPORT_NAME)
@@ -299,7 +300,7 @@ def curves(run_dir: Path = typer.Argument(..., help="Run folder."),
     import json
 
     from gridplan import api
-    from gridplan.curves import render_summary
+    from gridplan.showing.text import render_summary
     names = api.open_run(run_dir, model=model).model_names
     chosen = [model] if model is not None or len(names) == 1 else names
     with _busy("fitting learning curves"):
@@ -321,14 +322,15 @@ def curves(run_dir: Path = typer.Argument(..., help="Run folder."),
 
 def _plot_curves(run_dir: Path, summary: dict, output: Optional[Path], boot: int,
                  model: str | None) -> Path:
-    from gridplan import api, views
+    from gridplan import api
+    from gridplan.showing import figures
     run = api.open_run(run_dir, model=model)
     fits = api.fit_curves(run_dir, n_boot=boot, model=run.model)
-    figure = views.small_multiples_figure(run, fits, target=summary.get("target"))
+    figure = figures.small_multiples_figure(run, fits, target=summary.get("target"))
     name = "curves.png" if run.model == 0 else f"curves-{run.model_name}.png"
     path = output or (Path(run_dir) / name)
     api.refuse_run_file(run_dir, path, Path(run_dir) / name)
-    views.save_figure(figure, path)
+    figures.save_figure(figure, path)
     return path
 
 
@@ -346,22 +348,23 @@ def heatmap(run_dir: Path = typer.Argument(..., help="Run folder."),
                                                 help="Model to draw (runs of several models; default "
                                                      "the first, or the operating point's with --plan).")):
     """Draw the grid as a heatmap of training size against capacity or regularisation."""
-    from gridplan import api, views
+    from gridplan import api
+    from gridplan.showing import figures
     axis = "regularization" if axis == "regularisation" else axis   # the other spelling
     run = api.open_run(run_dir, model=model)
     advice = None
     if with_plan:
-        from gridplan.advisor import advise as make_advice
+        from gridplan.deciding.advisor import advise as make_advice
         with _busy("fitting learning curves and planning"):
             advice = make_advice(run_dir, target=target, model=model)
         if model is None and advice["operating_point"]["model"] != run.model_name:
             run = run.for_model(advice["operating_point"]["model"])
-    figure = views.heatmap_figure(run, show=show, axis=axis, capacity=capacity, advice=advice,
+    figure = figures.heatmap_figure(run, show=show, axis=axis, capacity=capacity, advice=advice,
                                   target=target)
     named = "" if run.model == 0 else f"{run.model_name}-"
     default = Path(run_dir) / f"heatmap-{named}{axis}-{show}.png"
     api.refuse_run_file(run_dir, output or default, default)
-    path = views.save_figure(figure, output or default)
+    path = figures.save_figure(figure, output or default)
     typer.echo(f"heatmap written to {path}")
 
 
@@ -386,8 +389,8 @@ def advise(run_dir: Path = typer.Argument(..., help="Run folder."),
     """Diagnose bias and variance and plan the cheapest way to the target error."""
     import json
 
-    from gridplan.advisor import advise as make_advice
-    from gridplan.advisor import render_advice
+    from gridplan.deciding.advisor import advise as make_advice
+    from gridplan.showing.text import render_advice
     with _busy("fitting learning curves and planning"):
         advice = make_advice(run_dir, target=target, at=at, confidence=confidence,
                              per_sample=per_sample, capacity_step=capacity_step,
@@ -407,7 +410,7 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder."),
                                                help="Model of the operating point (runs of several models)."),
            boot: int = typer.Option(DEFAULT_BOOT, "--boot", help="Bootstrap resamples per curve.")):
     """Write one self-contained HTML report: grid, curves, diagnosis, plan and cautions."""
-    from gridplan.report import write_report
+    from gridplan.showing.report import write_report
     with _busy("writing the report"):
         path = write_report(run_dir, output, target=target, confidence=confidence, at=at,
                             n_boot=boot, model=model)
@@ -428,7 +431,7 @@ def backtest(config: Path = typer.Argument(..., help="TOML config file."),
 
     from gridplan import api
     from gridplan.backtest import backtest as run_backtest
-    from gridplan.backtest import render_backtest
+    from gridplan.showing.text import render_backtest
     cfg = api.load_config(config)
     quiet = as_json or not sys.stderr.isatty()
     result = run_backtest(cfg, fraction=fraction, out=out, jobs=jobs, n_boot=boot,
@@ -442,7 +445,7 @@ def _keep_backtest(run_dir: Path, result: dict) -> None:
     """Store the backtest beside the main run so that its report can show it."""
     import json
 
-    from gridplan.report import BACKTEST_FILE
+    from gridplan.showing.gather import BACKTEST_FILE
     if (run_dir / "store.sqlite").is_file():
         (run_dir / BACKTEST_FILE).write_text(json.dumps(result.to_dict(), indent=2),
                                              encoding="utf-8")

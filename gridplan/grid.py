@@ -23,10 +23,10 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
-from gridplan.checks import check_metric
-from gridplan.config import DEFAULT_METRIC, Axis, Config, Costs, ModelConfig, value_label
-from gridplan.errors import InputError
-from gridplan.runs import Run, open_run
+from gridplan.common.checks import check_metric
+from gridplan.common.errors import InputError
+from gridplan.measuring.config import DEFAULT_METRIC, Axis, Config, Costs, ModelConfig, value_label
+from gridplan.measuring.runs import Run, open_run
 
 MEMORY = "in memory"      # what a grid kept in memory gives as its run folder in results
 
@@ -129,7 +129,7 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
     """
     from sklearn.base import clone
 
-    from gridplan.spec import GridSpec
+    from gridplan.measuring.spec import GridSpec
 
     try:
         clone(estimator)
@@ -156,8 +156,8 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
     sizes = _sizes(folds, train_sizes, smallest, labels)
     numeric = tuple(c for c in frame.columns if pd.api.types.is_numeric_dtype(frame[c]))
     categorical = tuple(c for c in frame.columns if c not in numeric)
-    from gridplan.data import Dataset
-    from gridplan.families import ModelPlan
+    from gridplan.measuring.data import Dataset
+    from gridplan.measuring.families import ModelPlan
     weights = _sample_weight(sample_weight, len(frame))
     dataset = Dataset(X=frame, y=target_values, numeric=numeric, categorical=categorical,
                       labels=labels, fingerprint=_fingerprint(frame, target_values),
@@ -168,7 +168,7 @@ def measure(estimator: Any, X: Any, y: Any, *, capacity: Any, regularization: An
                      regularization_values=reg.values, numeric=numeric,
                      categorical=categorical, impute=False, seed=seed, prototype=estimator)
     if weights is not None:
-        from gridplan.families import check_takes_weights
+        from gridplan.measuring.families import check_takes_weights
         check_takes_weights(plan, "sample_weight")
     spec = GridSpec(config=config, dataset=dataset, plan=plan, folds=tuple(folds), sizes=sizes)
     jobs = 1 if n_jobs is None else int(n_jobs)
@@ -184,7 +184,7 @@ def _config(model: ModelConfig, *, metric: str, task: str, target: float | None,
             confidence: float, costs: Costs | dict | None, seed: int, repeats: int,
             name: str) -> Config:
     """A Config for an in-memory grid: the fields the run and the deciding side read."""
-    from gridplan.checks import check_confidence, check_target
+    from gridplan.common.checks import check_confidence, check_target
     if target is not None:
         check_target(target)
     check_confidence(confidence)
@@ -210,7 +210,7 @@ def _folds(cv: Any, X: pd.DataFrame, y: np.ndarray, groups: Any, task: str, repe
 
     Training rows are in a fixed order, so the subsets of a fold are nested.
     """
-    from gridplan.splits import Fold, make_folds, nested_order
+    from gridplan.measuring.splits import Fold, make_folds, nested_order
     per_row = {}
     for name, values in (("groups", groups), ("time", time)):
         if values is None:
@@ -244,7 +244,7 @@ def _folds(cv: Any, X: pd.DataFrame, y: np.ndarray, groups: Any, task: str, repe
 
 
 def _sizes(folds, train_sizes, smallest, labels) -> tuple[int, ...]:
-    from gridplan.splits import size_ladder, smallest_training_fold
+    from gridplan.measuring.splits import size_ladder, smallest_training_fold
     full = smallest_training_fold(folds)
     if isinstance(train_sizes, int) and not isinstance(train_sizes, bool):
         sizes = size_ladder(full, values=None, count=train_sizes, smallest=smallest,
@@ -264,8 +264,8 @@ def _sizes(folds, train_sizes, smallest, labels) -> tuple[int, ...]:
 def _measure_in_memory(spec, jobs: int) -> "MemoryRun":
     """Run the grid into an SQLite store in memory and read it back; no file is written."""
     from gridplan.api import _model_meta, as_run_spec
-    from gridplan.runner import run_grid
-    from gridplan.store import Store
+    from gridplan.measuring.runner import run_grid
+    from gridplan.measuring.store import Store
     run_spec = as_run_spec(spec)
     with Store(Path(":memory:")) as store:
         entry = _model_meta(spec)
@@ -294,7 +294,7 @@ class MemoryRun(Run):
         return self.frame.copy()
 
     def for_model(self, model: str | int) -> "MemoryRun":
-        from gridplan.runs import model_index
+        from gridplan.measuring.runs import model_index
         model_index(self.model_names, model)
         return self
 
@@ -320,8 +320,8 @@ class Grid:
         return frame
 
     def curves(self, *, target: float | None = None, confidence: float | None = None):
-        """Every setting's fitted curve (a gridplan.results.CurvesSummary)."""
-        from gridplan.curves import curves_summary
+        """Every setting's fitted curve (a gridplan.common.results.CurvesSummary)."""
+        from gridplan.deciding.gridfit import curves_summary
         target = target if target is not None else self._config_value("target_error")
         confidence = confidence or self._config_value("confidence") or 0.9
         summary = curves_summary(self._fits(), target=target, confidence=confidence)
@@ -330,13 +330,13 @@ class Grid:
 
     def advise(self, *, target: float | None = None, confidence: float | None = None,
                at: str | None = None, costs: dict | None = None, **cost_values: float):
-        """Diagnosis and the cheapest plan (a gridplan.results.Advice; `.to_dict()` for JSON).
+        """Diagnosis and the cheapest plan (a gridplan.common.results.Advice; `.to_dict()` for JSON).
 
         Costs as a dict (`costs={"per_sample": 5}`) or as keywords (`per_sample=5`):
         per_sample, capacity_step, regularization_step, max_samples,
         less_capacity_step, per_fit_second.
         """
-        from gridplan.advisor import advise
+        from gridplan.deciding.advisor import advise
         values = {**(costs or {}), **cost_values}
         known = {"per_sample", "capacity_step", "regularization_step", "max_samples",
                  "less_capacity_step", "per_fit_second"}
@@ -348,13 +348,13 @@ class Grid:
                       curves=self._fits(), **values)
 
     def heatmap(self, show: str = "validation", axis: str = "capacity", **options):
-        """A heatmap Figure (see gridplan.views.heatmap_figure)."""
-        from gridplan.views import heatmap_figure
+        """A heatmap Figure (see gridplan.showing.figures.heatmap_figure)."""
+        from gridplan.showing.figures import heatmap_figure
         return heatmap_figure(self.run, show=show, axis=axis, **options)
 
     def plot_curves(self, target: float | None = None):
         """Learning curves across the capacity axis, as a Figure."""
-        from gridplan.views import small_multiples_figure
+        from gridplan.showing.figures import small_multiples_figure
         return small_multiples_figure(self.run, self._fits(),
                                       target=target if target is not None else
                                       self._config_value("target_error"))
@@ -362,10 +362,11 @@ class Grid:
     def report(self, path: str | Path, *, target: float | None = None,
                confidence: float | None = None) -> Path:
         """Write the one-file HTML report of this grid to `path`; returns the path."""
-        from gridplan.report import gather_inputs, write_inputs
+        from gridplan.showing.gather import gather_inputs
+        from gridplan.showing.report import write_inputs
         path = Path(path)
         if self.run.run_dir is not None:
-            from gridplan.runs import refuse_run_file
+            from gridplan.measuring.runs import refuse_run_file
             refuse_run_file(self.run.run_dir, path, self.run.run_dir / "report.html")
         if path.is_dir():
             raise InputError(f"cannot write the report to {path}: it is a folder; give a file "
@@ -374,7 +375,7 @@ class Grid:
 
     def _fits(self):
         if self._curves is None:
-            from gridplan.curvestore import cached_curves
+            from gridplan.deciding.curvestore import cached_curves
             self._curves = cached_curves(self.run.run_dir, self.run.cells())
         return self._curves
 

@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 
 from gridplan import api
-from gridplan.config import load_config
+from gridplan.measuring.config import load_config
 
 
 def toml_key(key: str) -> str:

@@ -10,12 +10,13 @@ import pandas as pd
 import pytest
 
 from gridplan import api
-from gridplan.advisor import advise, parse_operating_point, render_advice
 from gridplan.api import open_run
-from gridplan.curves import fit_grid
-from gridplan.errors import GridplanError
-from gridplan.planner import ACTIONS
-from gridplan.store import FoldRow, Store
+from gridplan.common.errors import GridplanError
+from gridplan.deciding.advisor import advise, parse_operating_point
+from gridplan.deciding.gridfit import fit_grid
+from gridplan.deciding.planner import ACTIONS
+from gridplan.measuring.store import FoldRow, Store
+from gridplan.showing.text import render_advice
 from tests.helpers import linear_data, quadratic_data, run_frame
 
 SIGMA = 0.5
@@ -181,7 +182,7 @@ def test_bad_input_is_one_sentence(quadratic):
     run_dir, curves = quadratic
     with pytest.raises(GridplanError, match="'7,1e-06' names no setting"):
         advise(run_dir, at="7,1e-06", curves=curves)
-    with pytest.raises(GridplanError, match="target error must be a positive number"):
+    with pytest.raises(GridplanError, match="target must be a positive error"):
         advise(run_dir, target=-1.0, curves=curves)
     with pytest.raises(GridplanError, match="confidence"):
         advise(run_dir, confidence=1.5, curves=curves)
@@ -199,7 +200,7 @@ def test_operating_point_labels_may_contain_commas():
 def test_axis_direction_follows_the_parameter_meaning(tmp_path):
     # reference library: scikit-learn's LogisticRegression regularises more as C gets smaller, and a
     # tree as max_leaf_nodes gets smaller; "more-regularization" must step that way
-    from gridplan.config import load_config
+    from gridplan.measuring.config import load_config
     from tests.helpers import write_config
     frame = linear_data(200, 2, 0.5, seed=1)
     frame["y"] = (frame["y"] > frame["y"].median()).astype(int)
@@ -262,7 +263,7 @@ def test_a_tree_plateau_is_not_called_the_noise_floor(tmp_path):
     if advice["noise_floor"] is not None:
         assert advice["noise_floor_band"][0] <= 4.0 + 0.3
     else:        # the report says the same as the JSON
-        from gridplan.report import write_report
+        from gridplan.showing.report import write_report
         html = write_report(tree_dir).read_text(encoding="utf-8")
         assert 'id="tile-floor"' in html and ">unknown<" in html
         assert "this model&#x27;s lowest plateau" in html or "this model's lowest plateau" in html
@@ -339,8 +340,8 @@ def test_actions_tied_on_plan_cost_collapse_to_one_line(quadratic):
 
 
 def test_a_report_after_advise_fits_no_curves(tmp_path, monkeypatch):
-    from gridplan import curvestore
-    from gridplan.report import write_report
+    from gridplan.deciding import curvestore
+    from gridplan.showing.report import write_report
     run_dir, _ = run_frame(tmp_path, quadratic_data(300, SIGMA, seed=8), {
         "data": {"target": "y"},
         "model": {"family": "poly-ridge", "capacity": {"values": [1, 2]},

@@ -7,10 +7,11 @@ import warnings
 import pytest
 from sklearn.datasets import load_digits
 
-from gridplan.backtest import backtest, backtest_spec, render_backtest
-from gridplan.config import load_config
-from gridplan.errors import GridplanError
-from gridplan.spec import resolve
+from gridplan.backtest import backtest, backtest_spec
+from gridplan.common.errors import GridplanError
+from gridplan.measuring.config import load_config
+from gridplan.measuring.spec import resolve
+from gridplan.showing.text import render_backtest
 from tests.helpers import write_config
 
 

@@ -180,7 +180,7 @@ def test_missing_values_can_be_imputed_on_request(tmp_path):
 
 
 def test_diagnosis_thresholds_are_read_and_checked(tmp_path):
-    from gridplan.config import load_config
+    from gridplan.measuring.config import load_config
     linear_data(120, 2, 0.5, seed=0).to_csv(tmp_path / "data.csv", index=False)
     sections = _with({})
     sections["diagnosis"] = {"floor_margin": 0.1, "min_share": 0.3}
@@ -231,7 +231,7 @@ def test_an_axis_of_two_million_values_is_refused_at_once(tmp_path):
 
 
 def test_max_fits_can_be_raised_explicitly(tmp_path):
-    from gridplan.config import load_config
+    from gridplan.measuring.config import load_config
     linear_data(120, 2, 0.5, seed=0).to_csv(tmp_path / "data.csv", index=False)
     sections = _with({"resampling.repeats": 2})
     sections["run"] = {"max_fits": 40}
@@ -268,7 +268,7 @@ def test_nul_bytes_in_paths_and_run_names_are_one_sentence(tmp_path):
     assert result.exit_code == 2 and "Invalid value for 'config'" in result.output
     assert "null byte" in result.output and "Traceback" not in result.output
     from gridplan import api
-    from gridplan.errors import GridplanError
+    from gridplan.common.errors import GridplanError
     with pytest.raises(GridplanError, match="run folder path .* contains a NUL byte"):
         api.open_run(tmp_path / "r\0un")
 
@@ -299,7 +299,7 @@ def test_data_paths_that_are_not_regular_files_say_what_they_are(tmp_path):
 
 
 def test_the_other_spelling_of_regularization_is_accepted_as_an_alias(tmp_path):
-    from gridplan.config import load_config
+    from gridplan.measuring.config import load_config
     linear_data(120, 2, 0.5, seed=0).to_csv(tmp_path / "data.csv", index=False)
     sections = _with({"model.regularization": None})
     sections["model"]["regularisation"] = {"values": [0.1, 1.0]}
@@ -316,7 +316,7 @@ def test_a_huge_tree_depth_is_quick_and_equals_the_full_tree(tmp_path):
     # 9e18 levels (it once hung `check`).
     from gridplan.api import check as check_config
     from gridplan.api import open_run, run
-    from gridplan.config import load_config
+    from gridplan.measuring.config import load_config
     frame = linear_data(200, 2, 0.5, seed=4)
     frame.to_csv(tmp_path / "data.csv", index=False)
     sections = _with({"model.family": "tree", "model.regularization": None,
@@ -343,13 +343,12 @@ def test_bootstrap_counts_out_of_range_are_one_sentence(tmp_path):
 
 def test_one_confidence_rule_everywhere(tmp_path):
     # common practice, no published source: bands below even odds are refused alike
-    # by the library, the curves and the advice (the rule lives in gridplan.checks).
-    from gridplan.advisor import _resolve_confidence
-    from gridplan.checks import check_confidence
-    from gridplan.curves import _check_confidence
-    from gridplan.errors import GridplanError
-    from gridplan.views import _confidence_default
-    for check in (check_confidence, _check_confidence, lambda v: _resolve_confidence(v, None),
+    # by the library, the curves and the advice (the rule lives in gridplan.common.checks).
+    from gridplan.common.checks import check_confidence
+    from gridplan.common.errors import GridplanError
+    from gridplan.deciding.advisor import _resolve_confidence
+    from gridplan.showing.figures import _confidence_default
+    for check in (check_confidence, lambda v: _resolve_confidence(v, None),
                   lambda v: _confidence_default(None, v)):
         assert check(0.9) == 0.9 and check(0.5) == 0.5
         for bad in (0.3, 1.0, True, "0.9"):
@@ -360,7 +359,7 @@ def test_one_confidence_rule_everywhere(tmp_path):
 def test_errors_say_what_kind_of_problem_they_are(tmp_path):
     # One base for the CLI to catch; bad input is also a ValueError for library callers.
     from gridplan import api
-    from gridplan.errors import ClusterError, GridplanError, InputError, NumericalError
+    from gridplan.common.errors import ClusterError, GridplanError, InputError, NumericalError
     assert issubclass(InputError, ValueError) and issubclass(InputError, GridplanError)
     assert issubclass(NumericalError, GridplanError) and issubclass(ClusterError, GridplanError)
     (tmp_path / "bad.toml").write_text('[data]\npath = "x.csv"\ntarget = "y"\n[model]\n'
@@ -368,6 +367,6 @@ def test_errors_say_what_kind_of_problem_they_are(tmp_path):
                                        '[goal]\nconfidence = 0.2\n', encoding="utf-8")
     with pytest.raises(ValueError, match=r"\[goal\] confidence must lie in \[0.5, 1\)"):
         api.load_config(tmp_path / "bad.toml")
-    from gridplan.curves import fit_setting
+    from gridplan.deciding.curves import fit_setting
     with pytest.raises(InputError, match="the bootstrap takes 2 to"):
         fit_setting([10, 20, 40], [[1.0, 1.1], [0.9, 0.8], [0.7, 0.75]], n_boot=1)

@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from gridplan.batchfit import fit_batch, nonnegative_line
-from gridplan.curves import FAMILIES, _starts
+from gridplan.deciding.batchfit import fit_batch, nonnegative_line
+from gridplan.deciding.shapes import FAMILIES, start_points
 
 SIZES = np.array([40, 80, 160, 320, 640, 1280, 2560], dtype=float)
 TRUTH = {"pow3": (0.2, 3.0, 0.6), "pow4": (0.2, 0.02, 0.7, 1.0),
@@ -40,7 +40,7 @@ def test_batched_fits_reach_scipys_least_squares_cost(family):
     from scipy.optimize import least_squares
     fam = FAMILIES[family]
     x, y, w = _noisy_problems(family, 30, seed=3)
-    start = _starts(family, x, y, w)[0]
+    start = start_points(family, x, y, w)[0]
     lower = np.array(fam.lower, dtype=float)
     upper = np.array(fam.upper, dtype=float)
     theta, cost = fit_batch(fam.evaluate, fam.jacobian, x, y, w, start, lower, upper)
@@ -95,8 +95,8 @@ def _small_run(tmp_path):
 
 
 def test_a_second_advise_fits_nothing_and_gives_the_same_advice(tmp_path, monkeypatch):
-    from gridplan import curvestore
-    from gridplan.advisor import advise
+    from gridplan.deciding import curvestore
+    from gridplan.deciding.advisor import advise
     run_dir, _ = _small_run(tmp_path)
     first = advise(run_dir)
     assert (run_dir / curvestore.CURVES_NAME).is_file()
@@ -119,7 +119,8 @@ def test_a_second_advise_fits_nothing_and_gives_the_same_advice(tmp_path, monkey
 
 
 def test_changed_cells_are_fitted_again(tmp_path, monkeypatch):
-    from gridplan import api, curvestore
+    from gridplan import api
+    from gridplan.deciding import curvestore
     run_dir, cells = _small_run(tmp_path)
     api.fit_curves(run_dir)
     calls = []
@@ -137,7 +138,8 @@ def test_changed_cells_are_fitted_again(tmp_path, monkeypatch):
 
 
 def test_a_damaged_curves_file_is_ignored_and_rewritten(tmp_path):
-    from gridplan import api, curvestore
+    from gridplan import api
+    from gridplan.deciding import curvestore
     run_dir, _ = _small_run(tmp_path)
     (run_dir / curvestore.CURVES_NAME).write_text("{not json")
     assert not api.fit_curves(run_dir).from_cache

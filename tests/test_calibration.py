@@ -11,8 +11,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from gridplan.calibration import fit_calibration
-from gridplan.curves import fit_grid
+from gridplan.deciding.calibration import fit_calibration
+from gridplan.deciding.gridfit import fit_grid
 
 
 def test_lean_and_spreads_are_recovered_from_draws_of_the_stated_model():

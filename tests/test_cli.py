@@ -230,12 +230,15 @@ def test_every_command_and_function_uses_one_bootstrap_default():
 
     import typer.models
 
-    from gridplan import advisor, api, backtest, curves, report
+    from gridplan import api, backtest
+    from gridplan.common.checks import DEFAULT_BOOT
+    from gridplan.deciding import advisor, curves, gridfit
+    from gridplan.showing import gather, report
     functions = [advisor.advise, api.fit_curves, api.curves_report, backtest.backtest,
-                 report.gather_inputs, report.write_report, curves.fit_grid, curves.fit_setting]
+                 gather.gather_inputs, report.write_report, gridfit.fit_grid, curves.fit_setting]
     for function in functions:
-        assert inspect.signature(function).parameters["n_boot"].default == curves.DEFAULT_BOOT, function
+        assert inspect.signature(function).parameters["n_boot"].default == DEFAULT_BOOT, function
     commands = {c.callback.__name__: c.callback for c in app.registered_commands}
     for name in ("curves", "advise", "report", "backtest"):
         option = inspect.signature(commands[name]).parameters["boot"].default
-        assert isinstance(option, typer.models.OptionInfo) and option.default == curves.DEFAULT_BOOT, name
+        assert isinstance(option, typer.models.OptionInfo) and option.default == DEFAULT_BOOT, name

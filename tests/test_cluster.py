@@ -15,11 +15,12 @@ pytest.importorskip("distributed")
 
 from distributed import Client, LocalCluster  # noqa: E402
 
-from gridplan import api, cluster  # noqa: E402
+from gridplan import api  # noqa: E402
 from gridplan.api import prepare_run_dir  # noqa: E402
-from gridplan.config import load_config  # noqa: E402
-from gridplan.errors import GridplanError  # noqa: E402
-from gridplan.spec import resolve  # noqa: E402
+from gridplan.common.errors import GridplanError  # noqa: E402
+from gridplan.measuring import cluster
+from gridplan.measuring.config import load_config  # noqa: E402
+from gridplan.measuring.spec import resolve  # noqa: E402
 from tests.helpers import linear_data, without_times, write_config  # noqa: E402
 
 KEY = ["capacity_index", "regularization_index", "size_index", "repeat", "fold"]
@@ -31,7 +32,7 @@ def dask_cluster():
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address="127.0.0.1:0") as local:
         with Client(local, set_as_default=False) as client:
-            client.run(importlib.import_module, "gridplan.runner")   # imports once, up front
+            client.run(importlib.import_module, "gridplan.measuring.runner")   # imports once, up front
             yield local, client
 
 

@@ -10,15 +10,11 @@ import pandas as pd
 import pytest
 from scipy.stats import norm
 
-from gridplan.curves import (
-    FAMILIES,
-    WIDE_BAND_RATIO,
-    curves_summary,
-    fit_grid,
-    fit_setting,
-    render_summary,
-)
-from gridplan.errors import GridplanError
+from gridplan.common.errors import GridplanError
+from gridplan.deciding.curves import WIDE_BAND_RATIO, fit_setting
+from gridplan.deciding.gridfit import curves_summary, fit_grid
+from gridplan.deciding.shapes import FAMILIES
+from gridplan.showing.text import render_summary
 
 SIZES = np.array([50, 100, 200, 400, 800, 1600, 3200], dtype=float)
 
@@ -363,7 +359,7 @@ def test_family_table_states_each_formula():
 # --- joint surface ---------------------------------------------------------------------------
 
 def test_joint_surface_recovers_its_parameters_and_shrugs_off_an_outlier():
-    from gridplan.curves import JointSurface, fit_joint_surface
+    from gridplan.deciding.surface import JointSurface, fit_joint_surface
 
     # L(N, D) = E + A / N^alpha + B / D^beta (Hoffmann et al. 2022), synthetic points
     # drawn from known parameters; the Huber loss on log errors resists one bad point.

@@ -8,9 +8,9 @@ import numpy as np
 import pandas as pd
 
 from gridplan import api
-from gridplan.config import load_config
-from gridplan.curves import fit_grid
+from gridplan.deciding.gridfit import fit_grid
 from gridplan.demo import NOISE_FLOOR_MSE, demo_config_text, make_orchard_data, sweetness
+from gridplan.measuring.config import load_config
 from tests.helpers import write_config
 
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"

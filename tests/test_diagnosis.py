@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from gridplan.curves import fit_grid
-from gridplan.diagnosis import (
+from gridplan.common.errors import GridplanError
+from gridplan.deciding.diagnosis import (
     Thresholds,
     corrected_t_test,
     corrected_variance_factor,
@@ -17,7 +17,7 @@ from gridplan.diagnosis import (
     estimate_noise_floor,
     verdict_for,
 )
-from gridplan.errors import GridplanError
+from gridplan.deciding.gridfit import fit_grid
 from tests.helpers import quadratic_data, run_frame
 
 SIGMA = 0.5
@@ -49,7 +49,7 @@ def test_corrected_t_statistic_shrinks_the_plain_one_by_the_factor():
 
 
 def _test(p: float):
-    from gridplan.diagnosis import CorrectedTest
+    from gridplan.deciding.diagnosis import CorrectedTest
     return CorrectedTest(0.1, 0.01, 0.2, 9, 10.0, p, 0.0, 0.2, 0.9)
 
 

@@ -11,9 +11,9 @@ from sklearn.pipeline import Pipeline
 from sklearn.preprocessing import PolynomialFeatures, StandardScaler
 from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
-from gridplan import fastpaths
-from gridplan.fastpaths import FastCell, has_fast_path, poly_ridge_grid, tree_depth_grid
-from gridplan.metrics import error_of, proba_for_labels
+from gridplan.common.metrics import error_of, proba_for_labels
+from gridplan.measuring import fastpaths
+from gridplan.measuring.fastpaths import FastCell, has_fast_path, poly_ridge_grid, tree_depth_grid
 
 DEGREES = [1, 2, 3, 4, 5, 6]
 ALPHAS = list(np.logspace(-6, 3, 10))

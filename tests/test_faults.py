@@ -14,9 +14,9 @@ import pytest
 
 from gridplan import api
 from gridplan.api import run_lock
-from gridplan.config import load_config
-from gridplan.errors import GridplanError
-from gridplan.store import Store
+from gridplan.common.errors import GridplanError
+from gridplan.measuring.config import load_config
+from gridplan.measuring.store import Store
 from tests.helpers import linear_data, without_times, write_config
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -130,7 +130,7 @@ def test_full_disk_gives_a_clear_error_and_keeps_committed_rows(tmp_path, monkey
             raise sqlite3.OperationalError("database or disk is full")
         return original(self, rows)
 
-    monkeypatch.setattr("gridplan.runner.FLUSH_ROWS", 10)
+    monkeypatch.setattr("gridplan.measuring.runner.FLUSH_ROWS", 10)
     monkeypatch.setattr(Store, "write_rows", fill_up_after_two_writes)
     with pytest.raises(sqlite3.OperationalError):
         api.run(config, out=tmp_path / "run", jobs=1)
@@ -144,7 +144,7 @@ def test_full_disk_gives_a_clear_error_and_keeps_committed_rows(tmp_path, monkey
 def test_store_write_error_becomes_one_sentence(tmp_path):
     store = Store(tmp_path / "s.sqlite")
     store.connection.execute("PRAGMA query_only = ON")
-    from gridplan.store import FoldRow
+    from gridplan.measuring.store import FoldRow
     row = FoldRow(0, 0, 0, 0, 0, 10, 0.1, 0.2, 0.01, "ok", "plain")
     with pytest.raises(GridplanError, match="cannot write to the store"):
         store.write_rows([row])
@@ -235,7 +235,7 @@ def test_a_scheduler_that_accepts_but_never_answers_fails_in_one_sentence(tmp_pa
     import socket
     import threading
 
-    from gridplan import cluster
+    from gridplan.measuring import cluster
     monkeypatch.setattr(cluster, "CONNECT_TIMEOUT", 1.0)
     listener = socket.socket()
     listener.bind(("127.0.0.1", 0))

@@ -15,8 +15,8 @@ from sklearn.tree import DecisionTreeRegressor
 
 import gridplan
 from gridplan import api
-from gridplan.errors import GridplanError
-from gridplan.results import Advice
+from gridplan.common.errors import GridplanError
+from gridplan.common.results import Advice
 from tests.helpers import write_config
 
 
@@ -178,7 +178,7 @@ def test_a_scorer_error_equals_the_scorers_own_value(grouped):
                              return_train_score=True)
         np.testing.assert_allclose(full.validation_error, to_error(ref["test_score"]), rtol=1e-9)
         np.testing.assert_allclose(full.train_error, to_error(ref["train_score"]), rtol=1e-9)
-    from gridplan.metrics import metric_label
+    from gridplan.common.metrics import metric_label
     assert metric_label("r2") == "1 - r2" and metric_label("neg_mean_absolute_error") == \
         "mean_absolute_error"
 

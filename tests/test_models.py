@@ -12,10 +12,11 @@ import pandas as pd
 import pytest
 
 from gridplan import api
-from gridplan.advisor import advise, render_advice
-from gridplan.config import load_config
-from gridplan.errors import GridplanError
-from gridplan.store import STORE_NAME, Store
+from gridplan.common.errors import GridplanError
+from gridplan.deciding.advisor import advise
+from gridplan.measuring.config import load_config
+from gridplan.measuring.store import STORE_NAME, Store
+from gridplan.showing.text import render_advice
 
 SIGMA2 = 4.0          # the scenario's noise variance: the best reachable MSE
 TARGET = 4.4
@@ -216,7 +217,7 @@ def test_a_store_written_before_models_opens_as_model_zero(tmp_path):
 
 
 def test_report_compares_the_models_with_the_advice_numbers(runs, tmp_path):
-    from gridplan.report import write_report
+    from gridplan.showing.report import write_report
     _, both, _ = runs
     path = write_report(both, tmp_path / "view.html", model="trees")
     text = path.read_text(encoding="utf-8")
@@ -229,7 +230,7 @@ def test_report_compares_the_models_with_the_advice_numbers(runs, tmp_path):
 
 
 def test_advice_is_one_typed_object_for_json_text_and_report(runs):
-    from gridplan.results import Advice, Move, PlanStep
+    from gridplan.common.results import Advice, Move, PlanStep
     _, both, _ = runs
     advice = advise(both, model="trees")
     assert isinstance(advice, Advice) and isinstance(advice.plan[0], PlanStep)
@@ -247,7 +248,8 @@ def test_advice_is_one_typed_object_for_json_text_and_report(runs):
 
 
 def test_backtest_checks_every_model(runs):
-    from gridplan.backtest import backtest, render_backtest
+    from gridplan.backtest import backtest
+    from gridplan.showing.text import render_backtest
     folder, _, _ = runs
     result = backtest(load_config(folder / "both.toml"), fraction=0.25, out=folder / "bt",
                       jobs=2, n_boot=30)

@@ -8,8 +8,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from gridplan.errors import GridplanError
-from gridplan.planner import (
+from gridplan.common.errors import GridplanError
+from gridplan.deciding.planner import (
     CostModel,
     Edge,
     Forecast,
@@ -90,7 +90,7 @@ def test_ranking_orders_first_moves_by_the_cheapest_plan_through_them():
     a, b, dead, goal = (State(0, 0, m) for m in (10, 20, 30, 40))
     forecasts = {a: Forecast(5, 5, 5, True), b: Forecast(4, 4, 4, False),
                  dead: Forecast(3, 3, 3, False), goal: Forecast(1, 1, 1, False)}
-    from gridplan.planner import StateGraph
+    from gridplan.deciding.planner import StateGraph
     graph = {a: [Edge("more-capacity", goal, 10.0), Edge("more-data", b, 1.0),
                  Edge("more-regularization", dead, 0.0)],
              b: [Edge("more-data", goal, 2.0)], dead: [], goal: []}

@@ -12,8 +12,8 @@ from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
 from gridplan import api
-from gridplan.config import load_config
-from gridplan.errors import GridplanError
+from gridplan.common.errors import GridplanError
+from gridplan.measuring.config import load_config
 from tests.helpers import write_config
 
 METRICS = ["mse", "rmse", "mae", "error_rate", "log_loss", "r2"]

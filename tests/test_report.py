@@ -16,13 +16,14 @@ import pandas as pd
 import pytest
 
 from gridplan import api
-from gridplan.advisor import advise
 from gridplan.backtest import backtest
-from gridplan.config import load_config
-from gridplan.errors import GridplanError
-from gridplan.report import BACKTEST_FILE, REPORT_NAME, read_backtest, write_report
-from gridplan.store import FoldRow, Store
-from gridplan.wording import money, sig
+from gridplan.common.errors import GridplanError
+from gridplan.common.wording import money, sig
+from gridplan.deciding.advisor import advise
+from gridplan.measuring.config import load_config
+from gridplan.measuring.store import FoldRow, Store
+from gridplan.showing.gather import BACKTEST_FILE, read_backtest
+from gridplan.showing.report import REPORT_NAME, write_report
 
 N_BOOT = 10
 TARGET = 0.3
@@ -353,7 +354,7 @@ def test_folders_without_finished_fits_are_refused(grid, tmp_path):
 
 
 def test_bad_target_is_refused(grid, tmp_path):
-    with pytest.raises(GridplanError, match="positive number"):
+    with pytest.raises(GridplanError, match="target must be a positive error"):
         write_report(grid[2], tmp_path / "r.html", target=-1.0, n_boot=N_BOOT)
     with pytest.raises(GridplanError, match="names no setting"):
         write_report(grid[2], tmp_path / "r.html", at="nope,1", n_boot=N_BOOT)
@@ -395,7 +396,7 @@ def test_without_a_target_the_settings_table_drops_target_columns(variant):
 
 
 def test_the_page_template_escapes_every_field_that_is_not_built_markup():
-    from gridplan.report import Markup, render_page
+    from gridplan.showing.markup import Markup, render_page
     page = render_page(title="<script>x</script>", style=Markup("b{}"), masthead="a & b",
                        glance=Markup("<p>ok</p>"), sections="", footer="")
     assert "&lt;script&gt;x&lt;/script&gt;" in page and "<script>" not in page

@@ -8,10 +8,10 @@ import pytest
 from sklearn.model_selection import learning_curve
 
 from gridplan import api
-from gridplan.config import load_config
-from gridplan.errors import GridplanError
-from gridplan.families import build_model
-from gridplan.spec import resolve
+from gridplan.common.errors import GridplanError
+from gridplan.measuring.config import load_config
+from gridplan.measuring.families import build_model
+from gridplan.measuring.spec import resolve
 from tests.helpers import linear_data, quadratic_data, run_frame, without_times, write_config
 
 
@@ -181,7 +181,7 @@ def test_interrupted_run_resumes_to_the_uninterrupted_table(tmp_path):
 
 def test_parallel_and_sequential_runs_are_identical(tmp_path, monkeypatch):
     # Common practice, no published source: the worker count must not change numbers.
-    monkeypatch.setattr("gridplan.runner.LOCAL_ONLY_SECONDS", 0.0)   # force the worker pool
+    monkeypatch.setattr("gridplan.measuring.runner.LOCAL_ONLY_SECONDS", 0.0)   # force the worker pool
     config = _resume_config(tmp_path)
     api.run(config, out=tmp_path / "one", jobs=1)
     api.run(config, out=tmp_path / "two", jobs=2)
@@ -215,7 +215,7 @@ def test_failing_cells_are_recorded_and_the_rest_completes(tmp_path):
 
 
 def test_fast_path_is_chosen_only_where_it_is_exact(tmp_path):
-    from gridplan.runner import fast_path_kind
+    from gridplan.measuring.runner import fast_path_kind
     frame = linear_data(120, 2, 0.3, seed=4)
     frame.to_csv(tmp_path / "data.csv", index=False)
 
@@ -258,7 +258,7 @@ def test_fast_path_on_threads_equals_one_thread(tmp_path):
 def test_shared_polynomial_features_change_no_number(tmp_path):
     # reference library: scikit-learn PolynomialFeatures works row by row; tasks that take their
     # rows from features built once for all rows must give the numbers they give alone
-    from gridplan import runner
+    from gridplan.measuring import runner
     frame = linear_data(300, 3, 0.5, seed=4)
     frame.to_csv(tmp_path / "data.csv", index=False)
     spec = resolve(load_config(write_config(tmp_path, {
@@ -279,7 +279,7 @@ def test_shared_polynomial_features_change_no_number(tmp_path):
 def test_shared_polynomial_features_have_a_size_limit(tmp_path, monkeypatch):
     # common practice, no published source: a table too large to hold once is not built;
     # each task builds its own rows' features as before
-    from gridplan import runner
+    from gridplan.measuring import runner
     frame = linear_data(300, 3, 0.5, seed=4)
     frame.to_csv(tmp_path / "data.csv", index=False)
     spec = resolve(load_config(write_config(tmp_path, {

@@ -9,8 +9,8 @@ from pathlib import Path
 import pytest
 
 from gridplan import api
-from gridplan.config import load_config
-from gridplan.errors import GridplanError
+from gridplan.common.errors import GridplanError
+from gridplan.measuring.config import load_config
 from tests.helpers import linear_data, write_config
 
 PACKAGE = Path(__file__).resolve().parents[1] / "gridplan"

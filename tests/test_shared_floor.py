@@ -5,8 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from gridplan.curves import _same_level, fit_grid
-from gridplan.diagnosis import estimate_noise_floor
+from gridplan.deciding.diagnosis import estimate_noise_floor
+from gridplan.deciding.floor import _same_level
+from gridplan.deciding.gridfit import fit_grid
 
 SIZES = [25, 50, 100, 200, 400, 800, 1600]
 SIGMA2 = 0.25

@@ -7,10 +7,11 @@ import shutil
 import numpy as np
 import pytest
 
-from gridplan import api, views
-from gridplan.curves import fit_grid
-from gridplan.errors import GridplanError
-from gridplan.store import FoldRow, Store
+from gridplan import api
+from gridplan.common.errors import GridplanError
+from gridplan.deciding.gridfit import fit_grid
+from gridplan.measuring.store import FoldRow, Store
+from gridplan.showing import figures
 from tests.helpers import quadratic_data, run_frame
 
 SIZES = [20, 40, 80, 160]
@@ -65,7 +66,7 @@ def annotation_grid(ax):
 
 def test_capacity_heatmap_has_one_cell_and_one_annotation_per_grid_point(grid):
     run, _ = grid
-    figure = views.heatmap_figure(run, target=TARGET)
+    figure = figures.heatmap_figure(run, target=TARGET)
     ax = axes_labelled(figure, "heatmap")
     mesh = ax.collections[0]
     assert mesh.get_array().shape == (len(DEGREES), len(SIZES))
@@ -82,7 +83,7 @@ def test_capacity_heatmap_has_one_cell_and_one_annotation_per_grid_point(grid):
 def test_capacity_heatmap_names_the_best_regularization_of_each_cell(grid):
     run, cells = grid
     means = cell_means(cells)["validation_error"]
-    texts = annotation_grid(axes_labelled(views.heatmap_figure(run), "heatmap"))
+    texts = annotation_grid(axes_labelled(figures.heatmap_figure(run), "heatmap"))
     for i in range(len(DEGREES)):
         for j, size in enumerate(SIZES):
             column = means.xs((i, size), level=["capacity_index", "train_size"])
@@ -94,7 +95,7 @@ def test_capacity_heatmap_names_the_best_regularization_of_each_cell(grid):
 def test_heatmap_values_match_the_store(grid, show):
     run, cells = grid
     means = cell_means(cells)
-    mesh = axes_labelled(views.heatmap_figure(run, show=show), "heatmap").collections[0]
+    mesh = axes_labelled(figures.heatmap_figure(run, show=show), "heatmap").collections[0]
     shown = np.asarray(mesh.get_array()).reshape(len(DEGREES), len(SIZES))
     for i in range(len(DEGREES)):
         for j, size in enumerate(SIZES):
@@ -107,7 +108,7 @@ def test_heatmap_values_match_the_store(grid, show):
 
 def test_regularization_heatmap_for_one_capacity(grid):
     run, cells = grid
-    figure = views.heatmap_figure(run, axis="regularization", capacity="2")
+    figure = figures.heatmap_figure(run, axis="regularization", capacity="2")
     ax = axes_labelled(figure, "heatmap")
     assert [t.get_text() for t in ax.get_yticklabels()] == ["0.001", "1", "100"]
     assert ax.get_ylabel() == "regularisation (alpha)"
@@ -122,9 +123,9 @@ def test_regularization_heatmap_for_one_capacity(grid):
 
 def test_cells_meeting_the_target_are_outlined(grid):
     run, cells = grid
-    data = views.heatmap_data(run)
+    data = figures.heatmap_data(run)
     target = float(np.nanmedian(data.validation))
-    figure = views.heatmap_figure(run, target=target)
+    figure = figures.heatmap_figure(run, target=target)
     outlined = by_gid(axes_labelled(figure, "heatmap"), "target-cell")
     expected = {(i, j) for (i, j), v in np.ndenumerate(data.validation) if v <= target}
     assert 0 < len(expected) < data.validation.size
@@ -144,9 +145,9 @@ def test_operating_point_and_plan_path_follow_the_advice(grid):
             {"action": "more-data", "cost": 480.0, "cumulative_cost": 580.0,
              "predicted_error": 0.27, "to": {"capacity": "2", "regularization": "1", "size": 640}},
         ]}
-    figure = views.heatmap_figure(run, advice=advice)
+    figure = figures.heatmap_figure(run, advice=advice)
     ax = axes_labelled(figure, "heatmap")
-    dx, dy = views.ADVICE_OFFSET
+    dx, dy = figures.ADVICE_OFFSET
     (start,) = by_gid(ax, "operating-point")
     assert (start.get_xdata()[0], start.get_ydata()[0]) == pytest.approx((3.5 + dx, 0.5 + dy))
     (path,) = by_gid(ax, "plan-path")
@@ -166,12 +167,12 @@ def test_plan_steps_on_one_spot_share_a_label(grid):
               "plan": [{"action": "less-regularization", "to": {"regularization": "1"}},
                        {"action": "less-regularization", "to": {"regularization": "0.001"}},
                        {"action": "more-capacity", "to": {"capacity": "3"}}]}
-    ax = axes_labelled(views.heatmap_figure(run, advice=advice), "heatmap")
+    ax = axes_labelled(figures.heatmap_figure(run, advice=advice), "heatmap")
     assert [t.get_text() for t in by_gid(ax, "plan-step")] == ["1-2", "3"]
-    ax = axes_labelled(views.heatmap_figure(run, axis="regularization", capacity="2",
+    ax = axes_labelled(figures.heatmap_figure(run, axis="regularization", capacity="2",
                                             advice=advice), "heatmap")
     (path,) = by_gid(ax, "plan-path")
-    np.testing.assert_allclose(path.get_ydata(), np.array([2.5, 1.5, 0.5]) + views.ADVICE_OFFSET[1])
+    np.testing.assert_allclose(path.get_ydata(), np.array([2.5, 1.5, 0.5]) + figures.ADVICE_OFFSET[1])
 
 
 def test_failed_rows_are_skipped_and_counted(grid, tmp_path):
@@ -181,24 +182,24 @@ def test_failed_rows_are_skipped_and_counted(grid, tmp_path):
     with Store.open_existing(copy) as store:
         store.write_rows([FoldRow(0, 0, 0, 0, 0, 20, None, None, 0.0, "failed", "plain", "boom")])
     broken = api.open_run(copy)
-    data = views.heatmap_data(broken, axis="regularization", capacity="1")
+    data = figures.heatmap_data(broken, axis="regularization", capacity="1")
     assert data.skipped_rows == 1
     assert data.fold_counts[0, 0] == 2
     kept = cells[(cells.capacity_index == 0) & (cells.regularization_index == 0)
                  & (cells.train_size == 20) & (cells.fold != 0)]
     assert data.values[0, 0] == pytest.approx(kept.validation_error.mean())
-    notes = axes_labelled(views.heatmap_figure(broken), "notes").texts[0].get_text()
+    notes = axes_labelled(figures.heatmap_figure(broken), "notes").texts[0].get_text()
     assert "1 failed fit skipped" in notes
 
 
 def test_bad_heatmap_requests_raise_one_sentence(grid):
     run, _ = grid
     with pytest.raises(GridplanError, match="Unknown show value 'bias'"):
-        views.heatmap_figure(run, show="bias")
+        figures.heatmap_figure(run, show="bias")
     with pytest.raises(GridplanError, match="Capacity '7' is not in this grid; choose one of 1, 2, 3"):
-        views.heatmap_figure(run, axis="regularization", capacity="7")
+        figures.heatmap_figure(run, axis="regularization", capacity="7")
     with pytest.raises(GridplanError, match="Unknown heatmap axis"):
-        views.heatmap_figure(run, axis="size")
+        figures.heatmap_figure(run, axis="size")
 
 
 # --- learning curves --------------------------------------------------------------------
@@ -209,7 +210,7 @@ def lines(ax):
 
 def test_curve_lines_are_the_fold_means_and_the_forecast_is_dashed_beyond_the_data(grid, fits):
     run, cells = grid
-    figure = views.curve_figure(run, fits, ("2", "1"))
+    figure = figures.curve_figure(run, fits, ("2", "1"))
     ax = axes_labelled(figure, "curves")
     drawn = lines(ax)
     means = cell_means(cells).xs((1, 1), level=["capacity_index", "regularization_index"])
@@ -231,7 +232,7 @@ def test_curve_lines_are_the_fold_means_and_the_forecast_is_dashed_beyond_the_da
 
 def test_fold_bands_span_the_lowest_and_highest_fold(grid, fits):
     run, cells = grid
-    ax = axes_labelled(views.curve_figure(run, fits, (0, 2)), "curves")
+    ax = axes_labelled(figures.curve_figure(run, fits, (0, 2)), "curves")
     (band,) = by_gid(ax, "validation-folds")
     ok = cells[(cells.capacity_index == 0) & (cells.regularization_index == 2)]
     spread = ok.groupby("train_size")["validation_error"].agg(["min", "max"])
@@ -245,7 +246,7 @@ def test_fold_bands_span_the_lowest_and_highest_fold(grid, fits):
 
 def test_curve_without_a_fit_draws_the_measurements_and_says_so(grid):
     run, _ = grid
-    ax = axes_labelled(views.curve_figure(run, {}, ("3", "100"), target=None), "curves")
+    ax = axes_labelled(figures.curve_figure(run, {}, ("3", "100"), target=None), "curves")
     assert {"train-mean", "validation-mean"} <= set(lines(ax))
     assert "forecast" not in lines(ax)
     assert "no curve fitted" in ax.get_title(loc="left")
@@ -254,24 +255,24 @@ def test_curve_without_a_fit_draws_the_measurements_and_says_so(grid):
 def test_unknown_setting_raises(grid, fits):
     run, _ = grid
     with pytest.raises(GridplanError, match="Regularization '0.5' is not in this grid"):
-        views.curve_figure(run, fits, ("2", "0.5"))
+        figures.curve_figure(run, fits, ("2", "0.5"))
     with pytest.raises(GridplanError, match="capacity index 9 is outside the grid"):
-        views.curve_figure(run, fits, (9, 0))
+        figures.curve_figure(run, fits, (9, 0))
 
 
 def test_small_multiples_show_the_best_regularization_per_capacity(grid, fits):
     run, cells = grid
     at_largest = cell_means(cells)["validation_error"].xs(160, level="train_size")
     expected = [(c, int(at_largest.xs(c, level="capacity_index").idxmin())) for c in range(3)]
-    assert views.small_multiples_settings(run) == expected
-    figure = views.small_multiples_figure(run, fits)
+    assert figures.small_multiples_settings(run) == expected
+    figure = figures.small_multiples_figure(run, fits)
     panels = [ax for ax in figure.axes if ax.get_visible() and ax.get_label().startswith("panel")]
     assert [ax.get_title().split("\n")[0] for ax in panels] == [
         f"degree {c + 1}, alpha {ALPHAS[r]:g}" for c, r in expected]
     assert len({ax.get_ylim() for ax in panels}) == 1
     # more capacities than panels: evenly spaced, first and last always kept
-    assert [c for c, _ in views.small_multiples_settings(run, max_panels=2)] == [0, 2]
-    two = views.small_multiples_figure(run, fits, max_panels=2)
+    assert [c for c, _ in figures.small_multiples_settings(run, max_panels=2)] == [0, 2]
+    two = figures.small_multiples_figure(run, fits, max_panels=2)
     assert sum(ax.get_visible() for ax in two.axes) == 2
 
 
@@ -279,22 +280,22 @@ def test_small_multiples_show_the_best_regularization_per_capacity(grid, fits):
 
 def test_save_by_extension_and_embedding_helpers(grid, tmp_path):
     run, _ = grid
-    figure = views.heatmap_figure(run, show="gap")
-    png = views.save_figure(figure, tmp_path / "out" / "map.png", dpi=40)
+    figure = figures.heatmap_figure(run, show="gap")
+    png = figures.save_figure(figure, tmp_path / "out" / "map.png", dpi=40)
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    svg = views.save_figure(figure, tmp_path / "map.SVG")
+    svg = figures.save_figure(figure, tmp_path / "map.SVG")
     assert "<svg" in svg.read_text(encoding="utf-8")
-    assert views.figure_to_png_bytes(figure, dpi=40)[:4] == b"\x89PNG"
-    text = views.figure_to_svg_text(figure)
+    assert figures.figure_to_png_bytes(figure, dpi=40)[:4] == b"\x89PNG"
+    text = figures.figure_to_svg_text(figure)
     assert text.lstrip().startswith("<?xml") and "<dc:date>" not in text
 
 
 def test_bad_output_paths_raise_one_sentence(grid, tmp_path):
     run, _ = grid
-    figure = views.heatmap_figure(run)
+    figure = figures.heatmap_figure(run)
     with pytest.raises(GridplanError, match=r"ending in \.png or \.svg"):
-        views.save_figure(figure, tmp_path / "map.jpg")
+        figures.save_figure(figure, tmp_path / "map.jpg")
     blocker = tmp_path / "file.txt"
     blocker.write_text("not a folder")
     with pytest.raises(GridplanError, match="Cannot write"):
-        views.save_figure(figure, blocker / "map.png")
+        figures.save_figure(figure, blocker / "map.png")

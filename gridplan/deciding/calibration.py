@@ -31,7 +31,8 @@ from statistics import NormalDist
 
 import numpy as np
 
-from gridplan.errors import GridplanError
+from gridplan.common.errors import GridplanError
+from gridplan.deciding.curves import make_problem
 
 #: Prior shape errors (relative error of a forecast's further drop; relative
 #: error of the forecast per doubling beyond the data) and their weight in
@@ -153,7 +154,7 @@ def self_checks(settings_data: list, fits: dict, families: tuple[str, ...]):
     settings checked), one entry
     per held size of each refit.
     """
-    from gridplan.curves import _fit_problems, _level_and_spread, _problem
+    from gridplan.deciding.curves import fit_problems, level_and_spread
 
     problems, held = [], []
     for data in settings_data:
@@ -164,13 +165,13 @@ def self_checks(settings_data: list, fits: dict, families: tuple[str, ...]):
         usable = np.any(np.isfinite(data.validation), axis=1)
         sizes, validation = data.sizes[usable], data.validation[usable]
         training = data.training[usable]
-        level, spread = _level_and_spread(validation)
+        level, spread = level_and_spread(validation)
         for back in range(1, ORIGINS + 1):
             cut = len(sizes) - back
             if cut < MIN_FIT_SIZES:
                 break
             try:
-                problems.append(_problem(sizes[:cut], validation[:cut], training[:cut], data.info,
+                problems.append(make_problem(sizes[:cut], validation[:cut], training[:cut], data.info,
                                          data.n_repeats, data.seed, fit.asymptote_min))
             except GridplanError:   # a truncated curve that cannot be fitted is not a check
                 continue
@@ -179,7 +180,7 @@ def self_checks(settings_data: list, fits: dict, families: tuple[str, ...]):
         return (*[np.array([])] * 6, 0)
     z = NormalDist().inv_cdf(0.95)
     drops, residuals, variances, levels, excesses, doublings, checked = [], [], [], [], [], [], set()
-    for refit, (key, sizes, level, spread) in zip(_fit_problems(problems, families, CHECK_BOOT),
+    for refit, (key, sizes, level, spread) in zip(fit_problems(problems, families, CHECK_BOOT),
                                                   held):
         if isinstance(refit, str):
             continue

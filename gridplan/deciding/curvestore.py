@@ -18,16 +18,12 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from gridplan.curves import (
-    DEFAULT_BOOT,
-    DEFAULT_FAMILIES,
-    CurveFit,
-    GridCurves,
-    SettingInfo,
-    SharedFloor,
-    fit_grid,
-)
-from gridplan.store import CURVES_NAME
+from gridplan.common.checks import DEFAULT_BOOT
+from gridplan.deciding.curves import CurveFit, SettingInfo
+from gridplan.deciding.floor import SharedFloor
+from gridplan.deciding.gridfit import GridCurves, fit_grid
+from gridplan.deciding.shapes import DEFAULT_FAMILIES
+from gridplan.measuring.store import CURVES_NAME
 
 #: Bumped whenever fitting changes what it returns, so older files are ignored.
 FORMAT_VERSION = 3
@@ -39,9 +35,9 @@ KEY_COLUMNS = ("model_index", "capacity_index", "regularization_index", "train_s
 
 def _fitting_code() -> str:
     """A hash of the modules that compute the curves: new code never reads old curves."""
-    from gridplan import batchfit, calibration, curves
+    from gridplan.deciding import batchfit, calibration, curves, floor, gridfit, shapes
     digest = hashlib.sha256()
-    for module in (batchfit, calibration, curves):
+    for module in (batchfit, shapes, curves, floor, gridfit, calibration):
         digest.update(Path(module.__file__).read_bytes())
     return digest.hexdigest()
 
@@ -146,15 +142,15 @@ def grid_from_json(data: dict) -> GridCurves:
                       unfitted=data["unfitted"])
     grid.floor = None if data["floor"] is None else SharedFloor(**data["floor"])
     if data.get("calibration") is not None:
-        from gridplan.calibration import Calibration
+        from gridplan.deciding.calibration import Calibration
         grid.calibration = Calibration(**data["calibration"])
     return grid
 
 
 def run_curves(run_dir, *, n_boot: int = DEFAULT_BOOT, seed: int = 0, model=None) -> GridCurves:
     """The curves of a run's model (a folder or a Run), kept in its folder when it has one."""
-    from gridplan.errors import GridplanError
-    from gridplan.runs import open_run
+    from gridplan.common.errors import GridplanError
+    from gridplan.measuring.runs import open_run
     run = open_run(run_dir, model=model)
     cells = run.cells()
     if cells.empty:

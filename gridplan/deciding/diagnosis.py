@@ -33,9 +33,9 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
-from gridplan.curves import CurveFit
-from gridplan.errors import GridplanError
-from gridplan.jsonable import plain as _plain
+from gridplan.common.errors import GridplanError
+from gridplan.common.jsonable import plain as _plain
+from gridplan.deciding.curves import CurveFit
 
 VERDICTS = ("high-bias", "high-variance", "both", "noise-floor", "fine")
 
@@ -298,12 +298,12 @@ class Plateau:
 
 
 def estimate_noise_floor(curves: dict, confidence: float) -> NoiseFloor | None:
-    """The data's noise floor, only where the run gives evidence for it (curves.shared_floor).
+    """The data's noise floor, only where the run gives evidence for it (floor.shared_floor).
 
     A single model's lowest asymptote is that model's plateau, which may be
     its own bias; see `best_plateau`. None when the floor is unknown.
     """
-    from gridplan.curves import shared_floor
+    from gridplan.deciding.floor import shared_floor
     if not curves:
         return None
     shared = getattr(curves, "floor", None) or shared_floor(curves, confidence)

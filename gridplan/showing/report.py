@@ -2,7 +2,7 @@
 
 `write_report(run_dir)` fits the learning curves once, asks the advisor for a
 verdict and a plan (when a target error is known), draws the heatmaps and
-curves with `gridplan.views`, and writes one HTML file with every image
+curves with `gridplan.showing.figures`, and writes one HTML file with every image
 embedded as a PNG data URI. The file needs no network and no JavaScript, and
 prints cleanly. Every string that comes from the data, the config or the run
 folder is escaped with `html.escape`.
@@ -13,36 +13,40 @@ run folder holds it as JSON in `backtest.json`.
 
 from __future__ import annotations
 
-import base64
-import html
-import json
 import math
 import os
 import tempfile
-import warnings
-from dataclasses import dataclass, field
-from datetime import datetime, timezone
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable, Iterable, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
 
-from gridplan.advisor import left_with_unlimited_data, mean_meets_but_interval_not
-from gridplan.checks import DEFAULT_BOOT
-from gridplan.errors import GridplanError
-from gridplan.metrics import METRIC_LABELS, metric_label
-from gridplan.wording import money, plural, sig
+from gridplan.common.checks import DEFAULT_BOOT
+from gridplan.common.errors import GridplanError
+from gridplan.common.metrics import METRIC_LABELS, metric_label
+from gridplan.common.wording import money, plural, sig
+from gridplan.showing.gather import BACKTEST_FILE, ReportInputs, axis_labels, gather_inputs
+from gridplan.showing.markup import (
+    Markup,
+    drawn,
+    esc,
+    facts,
+    join,
+    page_style,
+    para,
+    render_page,
+    section,
+    table,
+)
+from gridplan.showing.text import left_with_unlimited_data, mean_meets_but_interval_not
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.figure import Figure
 
-    from gridplan.curves import GridCurves
-    from gridplan.runs import Run
+    from gridplan.measuring.runs import Run
 
 REPORT_NAME = "report.html"
-BACKTEST_FILE = "backtest.json"
-FIGURE_DPI = 130
 
 VERDICT_WORDS = {
     "fine": "meets the target",
@@ -51,30 +55,6 @@ VERDICT_WORDS = {
     "both": "bias and variance both matter",
     "noise-floor": "close to the noise floor",
 }
-
-
-# --- escaping ----------------------------------------------------------------------------------
-
-class Markup(str):
-    """Text that is already HTML (built here from escaped parts); never escaped again."""
-
-
-def esc(value: Any) -> str:
-    """HTML-escape any value's text, quotes included (Markup passes through)."""
-    if isinstance(value, Markup):
-        return value
-    return html.escape("" if value is None else str(value), quote=True)
-
-
-def _join(parts: Iterable[Any]) -> Markup:
-    return Markup("".join(esc(p) for p in parts))
-
-
-def _tag(name: str, content: Any = "", **attributes: Any) -> Markup:
-    """<name attr="...">content</name>, with attribute values and plain content escaped."""
-    attrs = "".join(f' {k.rstrip("_").replace("_", "-")}="{esc(v)}"'
-                    for k, v in attributes.items() if v is not None)
-    return Markup(f"<{name}{attrs}>{esc(content)}</{name}>")
 
 
 # --- number words -------------------------------------------------------------------------------
@@ -129,198 +109,7 @@ def _data_value(value: Any) -> str | None:
     return repr(float(value)) if isinstance(value, (int, float)) else str(value)
 
 
-# --- what the report is built from ---------------------------------------------------------------------
-
-@dataclass
-class ReportInputs:
-    """Everything one report shows, gathered once."""
-
-    run: "Run"
-    cells: pd.DataFrame
-    fits: "GridCurves"
-    summary: dict
-    target: float | None
-    confidence: float
-    advice: dict | None
-    advice_note: str | None
-    backtest: dict | None
-    backtest_note: str | None
-    n_boot: int
-    seed: int
-    written: datetime = field(default_factory=lambda: datetime.now(timezone.utc))
-
-
-def _check_target(target: float | None) -> float | None:
-    if target is None:
-        return None
-    if isinstance(target, bool) or not isinstance(target, (int, float)) \
-            or not math.isfinite(target) or target <= 0:
-        raise GridplanError(f"the target error must be a positive number, got {target!r}.")
-    return float(target)
-
-
-def _check_confidence(confidence: float) -> float:
-    from gridplan.checks import check_confidence
-    return check_confidence(confidence)
-
-
-def read_backtest(run_dir: str | Path) -> tuple[dict | None, str | None]:
-    """The backtest stored in RUN_DIR/backtest.json: (result, None), (None, why unusable) or (None, None)."""
-    if run_dir is None:            # a grid kept in memory has no stored backtest
-        return None, None
-    path = Path(run_dir) / BACKTEST_FILE
-    if not path.is_file():
-        return None, None
-    try:
-        result = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        return None, f"{BACKTEST_FILE} could not be read ({exc.__class__.__name__}), so it is not shown."
-    if not _looks_like_backtest(result):
-        return None, (f"{BACKTEST_FILE} does not hold a backtest result (a list of rows with "
-                      f"predicted, low, high and measured errors), so it is not shown.")
-    return result, None
-
-
-def _looks_like_backtest(result: Any) -> bool:
-    """True when `result` has the fields the report shows, with numbers where numbers belong."""
-    def number(value: Any, optional: bool = False) -> bool:
-        return (optional and value is None) or (
-            isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
-
-    if not isinstance(result, dict):
-        return False
-    rows = result.get("rows")
-    if not isinstance(rows, list) or not rows:
-        return False
-    for row in rows:
-        if not isinstance(row, dict) or not all(number(row.get(k)) for k in
-                                                ("predicted", "low", "high", "measured")):
-            return False
-        if not number(row.get("rel_error"), optional=True):
-            return False
-    sizes = result.get("fitted_sizes", [])
-    return (all(number(result.get(k), optional=True) for k in
-                ("median_abs_rel_error", "coverage", "confidence", "full_size"))
-            and isinstance(sizes, list) and all(number(v) for v in sizes))
-
-
-def gather_inputs(run_dir: str | Path, *, target: float | None = None,
-                  confidence: float | None = None, at: str | None = None,
-                  n_boot: int = DEFAULT_BOOT, seed: int = 0, model: str | None = None) -> ReportInputs:
-    """Open the run, fit its curves once, and ask the advisor (when a target is known).
-
-    With several models the pictures and tables show the operating point's
-    model (`model`, or the one the advisor stands at).
-    """
-    from gridplan import runs
-    from gridplan.advisor import advise, parse_operating_point
-    from gridplan.curves import curves_summary
-    from gridplan.curvestore import run_curves
-
-    run = runs.open_run(run_dir, model=model)
-    several = len(run.model_names) > 1
-    cells = run.cells()
-    if cells.empty or not (cells["status"] == "ok").any():
-        raise GridplanError(f"{run_dir} holds no finished fits yet; run the grid before writing a report.")
-    if at is not None:
-        parse_operating_point(at, _labels(run, "capacity"), _labels(run, "regularization"))
-    config = run.config
-    target = _check_target(target if target is not None else
-                           (config.target_error if config is not None else None))
-    confidence = _check_confidence(confidence if confidence is not None else
-                                   (config.confidence if config is not None else 0.9))
-    advice, note = None, None
-
-    def ask(curves=None) -> None:
-        nonlocal advice, note
-        try:
-            advice = advise(run_dir, target=target, confidence=confidence, at=at, model=model,
-                            n_boot=n_boot, seed=seed, curves=curves)
-        except GridplanError as problem:
-            if at is not None:
-                raise
-            note = f"the advisor could not plan for this run: {problem}"
-
-    if target is None:
-        note = ("no target error is set (neither [goal] target in the config nor a target option), "
-                "so there is no verdict against a target and no plan.")
-    elif several:
-        ask()
-        if advice is not None:
-            run = runs.open_run(run_dir, model=advice["operating_point"]["model"])
-            cells = run.cells()
-    fits = run_curves(run_dir, n_boot=n_boot, seed=seed, model=run.model)
-    summary = curves_summary(fits, target=target, confidence=confidence)
-    if target is not None and not several:
-        ask(fits)
-    backtest, backtest_note = read_backtest(run.run_dir)
-    return ReportInputs(run=run, cells=cells, fits=fits, summary=summary, target=target,
-                        confidence=confidence, advice=advice, advice_note=note,
-                        backtest=backtest, backtest_note=backtest_note, n_boot=n_boot, seed=seed)
-
-
-# --- small HTML builders -------------------------------------------------------------------------
-
-def _table(headers: Sequence[str], rows: Iterable[Sequence[Any]], *, css: str = "",
-           row_classes: Sequence[str | None] | None = None, caption: str | None = None,
-           keep_whole: Sequence[int] = ()) -> Markup:
-    """A table with escaped cells (Markup cells are kept as they are).
-
-    Cells in the columns numbered in `keep_whole` are never broken across lines.
-    """
-    head = "".join(f"<th scope=\"col\">{esc(h)}</th>" for h in headers)
-    body = []
-    for n, row in enumerate(rows):
-        cls = row_classes[n] if row_classes is not None else None
-        cells = "".join(f"<td class=\"whole\">{esc(c)}</td>" if i in keep_whole else f"<td>{esc(c)}</td>"
-                        for i, c in enumerate(row))
-        opening = f"<tr class=\"{esc(cls)}\">" if cls else "<tr>"
-        body.append(f"{opening}{cells}</tr>")
-    cap = f"<caption>{esc(caption)}</caption>" if caption else ""
-    return Markup(f"<table class=\"{esc(css)}\">{cap}<thead><tr>{head}</tr></thead>"
-                  f"<tbody>{''.join(body)}</tbody></table>")
-
-
-def _facts(pairs: Iterable[tuple[str, Any]]) -> Markup:
-    """A two-column table of name and value."""
-    rows = "".join(f"<tr><th scope=\"row\">{esc(k)}</th><td>{esc(v)}</td></tr>" for k, v in pairs)
-    return Markup(f"<table class=\"facts\"><tbody>{rows}</tbody></table>")
-
-
-def _section(ident: str, number: int, title: str, body: Iterable[Any]) -> Markup:
-    return Markup(f"<section id=\"{esc(ident)}\"><h2><span class=\"num\">{number}</span> "
-                  f"{esc(title)}</h2>{_join(body)}</section>")
-
-
-def _p(text: Any, css: str | None = None) -> Markup:
-    return _tag("p", text, class_=css)
-
-
-def _png_figure(figure: "Figure", alt: str, caption: str) -> Markup:
-    from gridplan.views import figure_to_png_bytes
-    with warnings.catch_warnings():
-        # long labels on a small grid: the picture is still drawn, only less tidily
-        warnings.filterwarnings("ignore", message="constrained_layout not applied")
-        png = figure_to_png_bytes(figure, dpi=FIGURE_DPI)
-    data = base64.b64encode(png).decode("ascii")
-    return Markup(f"<figure><img src=\"data:image/png;base64,{data}\" alt=\"{esc(alt)}\">"
-                  f"<figcaption>{esc(caption)}</figcaption></figure>")
-
-
-def _drawn(make: Callable[[], "Figure"], alt: str, caption: str) -> Markup:
-    """A figure, or a note saying why it could not be drawn."""
-    try:
-        figure = make()
-    except GridplanError as problem:
-        return _p(f"This picture could not be drawn: {problem}", "note")
-    return _png_figure(figure, alt, caption)
-
-
 # --- reading the run ------------------------------------------------------------------------------
-
-def _labels(run: "Run", axis: str) -> list[str]:
-    return [str(e[0]) if isinstance(e, (list, tuple)) else str(e) for e in run.axes.get(axis, [])]
-
 
 def _metric_words(run: "Run") -> str:
     metric = run.meta.get("metric") or "error"
@@ -355,7 +144,7 @@ def _operating_key(inputs: ReportInputs) -> tuple[int, int]:
 def _setting_words(run: "Run", capacity: Any, regularization: Any) -> str:
     cap = run.meta.get("capacity_param") or "capacity"
     reg = run.meta.get("regularization_param") or "regularisation"
-    if len(_labels(run, "regularization")) <= 1:
+    if len(axis_labels(run, "regularization")) <= 1:
         return f"{cap} {capacity}"
     return f"{cap} {capacity}, {reg} {regularization}"
 
@@ -424,18 +213,18 @@ def _at_a_glance(inputs: ReportInputs) -> Markup:
         value = float(rows[rows["train_size"] == size]["validation_error"].mean())
         why = "no target error is set" if inputs.target is None else "the advisor could not judge"
         tiles.append(_tile("Verdict", "none", why, "verdict"))
-        where = _setting_words(run, _labels(run, "capacity")[ci], _labels(run, "regularization")[ri])
+        where = _setting_words(run, axis_labels(run, "capacity")[ci], axis_labels(run, "regularization")[ri])
         tiles.append(_tile("Best validation error", _num(value), f"at {where}, {_count(size)} rows",
                            "error", value))
         tiles.append(_tile("Cheapest plan", "not planned", why, "plan-cost"))
     body = ([Markup(f"<p class=\"headline\" id=\"headline\">{esc(a['headline'])}</p>")]
             if a is not None else [])
-    body.append(Markup(f"<div class=\"tiles\">{_join(tiles)}</div>"))
+    body.append(Markup(f"<div class=\"tiles\">{join(tiles)}</div>"))
     if a is not None:
-        body.append(_p(f"In short: {a['verdict_reason']}.", "lead"))
+        body.append(para(f"In short: {a['verdict_reason']}.", "lead"))
     else:
-        body.append(_p(f"No plan in this report: {inputs.advice_note}", "note"))
-    return Markup(f"<section id=\"glance\" class=\"glance\">{_join(body)}</section>")
+        body.append(para(f"No plan in this report: {inputs.advice_note}", "note"))
+    return Markup(f"<section id=\"glance\" class=\"glance\">{join(body)}</section>")
 
 
 def _costs_words(inputs: ReportInputs) -> list[tuple[str, str]]:
@@ -502,8 +291,8 @@ def _job_section(inputs: ReportInputs, number: int) -> Markup:
         ("Task", meta.get("task", "?")),
         ("Feature columns", ", ".join(map(str, features)) if features else "all but the target"),
         ("Model", model),
-        (f"Capacity axis ({cap_param})", ", ".join(_labels(run, "capacity"))),
-        (f"Regularisation axis ({reg_param})", ", ".join(_labels(run, "regularization")) or "none"),
+        (f"Capacity axis ({cap_param})", ", ".join(axis_labels(run, "capacity"))),
+        (f"Regularisation axis ({reg_param})", ", ".join(axis_labels(run, "regularization")) or "none"),
         ("Training sizes (rows)", ", ".join(f"{int(s):,}" for s in meta.get("sizes", []))),
         ("Resampling", resampling),
         ("Metric", _metric_words(run)),
@@ -512,9 +301,9 @@ def _job_section(inputs: ReportInputs, number: int) -> Markup:
         ("Fits", fits),
     ]
     pairs += _costs_words(inputs)
-    return _section("job", number, "The job", [
-        _p("What was measured, on what, and what it costs to change. Costs are in your own units."),
-        _facts(pairs)])
+    return section("job", number, "The job", [
+        para("What was measured, on what, and what it costs to change. Costs are in your own units."),
+        facts(pairs)])
 
 
 def _test_words(test: Mapping | None, confidence: float) -> str:
@@ -529,9 +318,9 @@ def _test_words(test: Mapping | None, confidence: float) -> str:
 def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
     a = inputs.advice
     if a is None:
-        return _section("diagnosis", number, "Diagnosis", [
-            _p(f"No diagnosis against a target: {inputs.advice_note}", "note"),
-            _p("The maps, curves and per-setting table below still show every measured number.")])
+        return section("diagnosis", number, "Diagnosis", [
+            para(f"No diagnosis against a target: {inputs.advice_note}", "note"),
+            para("The maps, curves and per-setting table below still show every measured number.")])
     d, op, run = a["diagnosis"], a["operating_point"], inputs.run
     badge = Markup(f"<p class=\"verdict verdict-{esc(a['verdict'])}\"><span class=\"badge\" "
                    f"id=\"verdict\" data-value=\"{esc(a['verdict'])}\">{esc(a['verdict'])}</span> "
@@ -568,7 +357,7 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
                          _level_band(a["plateau"], a["plateau_band"], scale)
                          + f" (at {where} {a['plateau_setting']})"))
     if a.get("calibration"):
-        from gridplan.calibration import Calibration
+        from gridplan.deciding.calibration import Calibration
         rows.append(("Forecasts beyond the data", Calibration(**a["calibration"]).sentence()))
     if d.get("bias_share") is not None:
         rows.append(("Share of the excess error", f"bias {d['bias_share']:.0%}, "
@@ -580,13 +369,13 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
         rows.append(("… left with unlimited data (asymptote minus target)",
                      _with_band(d["not_removable"], d["not_removable_band"])
                      + "; " + left_with_unlimited_data(d["not_removable"])))
-    body = [badge, _facts(rows)]
+    body = [badge, facts(rows)]
     if a.get("noise_floor_at_capacity_edge"):
-        body.append(_p("The lowest asymptote lies at the grid's largest capacity and is still falling "
+        body.append(para("The lowest asymptote lies at the grid's largest capacity and is still falling "
                        "with capacity, so it may include bias; no noise-floor verdict is given.", "note"))
     t = a.get("thresholds") or {}
     if t:
-        body.append(_p(f"How the verdict is reached: the gap counts as real when its one-sided "
+        body.append(para(f"How the verdict is reached: the gap counts as real when its one-sided "
                        f"p-value is below {_num(t.get('alpha'))}; bias or variance is named when it "
                        f"explains at least {_num(t.get('min_share'))} of the excess error; 'near the "
                        f"noise floor' means a validation error within {_num(t.get('floor_margin'))} x "
@@ -594,7 +383,7 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
                        f"{_num(t.get('flat_fraction'))} x the target per doubling. Folds share "
                        f"training rows, so the intervals use the corrected resampled t-test.",
                        "small"))
-    return _section("diagnosis", number, "Where you stand", body)
+    return section("diagnosis", number, "Where you stand", body)
 
 
 def _to_words(run: "Run", to: Mapping) -> str:
@@ -622,35 +411,35 @@ def _models_section(inputs: ReportInputs, number: int) -> Markup:
         f"{_num(a['noise_floor'])} {_band(a['noise_floor_band'])}, {a['noise_floor_evidence']}."
         if a["noise_floor"] is not None else
         "unknown; the lowest plateau of any model bounds it from above."))
-    return _section("models", number, "Models compared", [
-        _p(f"Each model at its best measured setting at the largest size. A plan may switch model "
+    return section("models", number, "Models compared", [
+        para(f"Each model at its best measured setting at the largest size. A plan may switch model "
            f"for {_money(a['costs'].get('switch_model'))} and go on with that model's own cheapest "
            f"plan; the pictures below show model {inputs.run.model_name}, where the operating "
            f"point is."),
-        _table(["model", "kind", "capacity / regularisation", "best setting", "validation error",
+        table(["model", "kind", "capacity / regularisation", "best setting", "validation error",
                 "plateau [band]", "own plan from there"], rows, css="numbers"),
-        _p(floor)])
+        para(floor)])
 
 
 def _plan_section(inputs: ReportInputs, number: int) -> Markup:
     a, run = inputs.advice, inputs.run
     if a is None:
-        return _section("plan", number, "The plan", [
-            _p(f"There is no plan in this report: {inputs.advice_note}", "note"),
-            _p("Set [goal] target in the config, or pass a target when writing the report, to get one.")])
+        return section("plan", number, "The plan", [
+            para(f"There is no plan in this report: {inputs.advice_note}", "note"),
+            para("Set [goal] target in the config, or pass a target when writing the report, to get one.")])
     if not a["reachable"]:
-        return _section("plan", number, "The plan", [
+        return section("plan", number, "The plan", [
             Markup(f"<p class=\"unreachable\" id=\"plan-total\">No plan reaches the target "
                    f"{esc(_given(a['target']))}. Binding limit: <strong>{esc(a['binding_limit'])}"
                    f"</strong>.</p>"),
-            _p(a["binding_detail"])])
+            para(a["binding_detail"])])
     if not a["plan"]:
-        return _section("plan", number, "The plan", [
+        return section("plan", number, "The plan", [
             Markup(f"<p id=\"plan-total\" data-value=\"{esc(_data_value(a['plan_cost']))}\">Nothing "
                    f"to do: the operating point already meets the target {esc(_given(a['target']))} "
                    f"(plan cost {esc(_money(a['plan_cost']))}).</p>"),
-            _p("The ranked moves below show what each change would cost and do.")])
-    unsure = ([_p(mean_meets_but_interval_not(a["confidence"]) + " The plan makes it do so.", "note")]
+            para("The ranked moves below show what each change would cost and do.")])
+    unsure = ([para(mean_meets_but_interval_not(a["confidence"]) + " The plan makes it do so.", "note")]
               if a.get("verdict") == "fine" else [])
     rows = []
     for n, step in enumerate(a["plan"], 1):
@@ -662,11 +451,11 @@ def _plan_section(inputs: ReportInputs, number: int) -> Markup:
     total = Markup(f"<p id=\"plan-total\" data-value=\"{esc(_data_value(a['plan_cost']))}\">Cheapest way "
                    f"to the target {esc(_given(a['target']))}: <strong>{esc(plural(len(a['plan']), 'step'))}, total "
                    f"cost {esc(_money(a['plan_cost']))}</strong>.</p>")
-    return _section("plan", number, "The plan", [
+    return section("plan", number, "The plan", [
         total, *unsure,
-        _table(["#", "action", "from", "to", "step cost", "cumulative", "error after the step",
+        table(["#", "action", "from", "to", "step cost", "cumulative", "error after the step",
                 "source"], rows, css="numbers plan"),
-        _p(f"Errors after a step are best estimates with their {a['confidence']:.0%} interval: the mean "
+        para(f"Errors after a step are best estimates with their {a['confidence']:.0%} interval: the mean "
            f"over folds and its corrected t interval where the size was measured, the curve forecast "
            f"and its band beyond. A state meets the target when its whole interval is at or below it.",
            "small")])
@@ -693,59 +482,59 @@ def _actions_section(inputs: ReportInputs, number: int) -> Markup:
                      _with_band(item["predicted_error"], item["interval"]),
                      _money(item["plan_cost"]), outcome])
         classes.append(None if item["reachable"] else "muted")
-    return _section("actions", number, "Next moves, ranked", [
-        _p("Every first move from the operating point, cheapest full plan first. 'Plan total' is the "
+    return section("actions", number, "Next moves, ranked", [
+        para("Every first move from the operating point, cheapest full plan first. 'Plan total' is the "
            "cost of that move plus the cheapest way on from there."),
-        _table(["rank", "move", "to", "step cost", "error after the move [band]", "plan total",
+        table(["rank", "move", "to", "step cost", "error after the move [band]", "plan total",
                 "outcome"], rows, css="numbers actions", row_classes=classes)])
 
 
 def _maps_section(inputs: ReportInputs, number: int) -> Markup:
-    from gridplan import views
+    from gridplan.showing import figures
     run, a, target = inputs.run, inputs.advice, inputs.target
-    drawn = "; the operating point and the plan are drawn on top" if a is not None else ""
-    body = [_p("Each cell is one capacity and training size, at the regularisation with the lowest "
+    drawn_on = "; the operating point and the plan are drawn on top" if a is not None else ""
+    body = [para("Each cell is one capacity and training size, at the regularisation with the lowest "
                "validation error (named under the value). Darker is lower. Cells outlined in white "
                "meet the target." if target is not None else
                "Each cell is one capacity and training size, at the regularisation with the lowest "
                "validation error (named under the value). Darker is lower.")]
-    body.append(_drawn(lambda: views.heatmap_figure(run, show="validation", axis="capacity",
+    body.append(drawn(lambda: figures.heatmap_figure(run, show="validation", axis="capacity",
                                                     advice=a, target=target),
                        "Heatmap of validation error by capacity and training rows",
-                       f"Validation error by capacity and training rows{drawn}."))
-    body.append(_drawn(lambda: views.heatmap_figure(run, show="gap", axis="capacity", advice=a,
+                       f"Validation error by capacity and training rows{drawn_on}."))
+    body.append(drawn(lambda: figures.heatmap_figure(run, show="gap", axis="capacity", advice=a,
                                                     target=target),
                        "Heatmap of the gap between validation and training error",
                        "Gap between validation and training error: a large gap that shrinks with "
                        "more rows points to variance; a small gap with a high error points to bias."))
-    if len(_labels(run, "regularization")) > 1:
+    if len(axis_labels(run, "regularization")) > 1:
         ci, _ = _operating_key(inputs)
-        capacity = _labels(run, "capacity")[ci]
-        body.append(_drawn(lambda: views.heatmap_figure(run, show="validation", axis="regularization",
+        capacity = axis_labels(run, "capacity")[ci]
+        body.append(drawn(lambda: figures.heatmap_figure(run, show="validation", axis="regularization",
                                                         capacity=capacity, advice=a, target=target),
                            "Heatmap of validation error by regularisation at the operating capacity",
                            f"Validation error by regularisation and training rows at the operating "
                            f"point's capacity ({capacity})."))
-    return _section("maps", number, "Grid maps", body)
+    return section("maps", number, "Grid maps", body)
 
 
 def _curves_section(inputs: ReportInputs, number: int) -> Markup:
-    from gridplan import views
+    from gridplan.showing import figures
     run, fits = inputs.run, inputs.fits
     key = _operating_key(inputs)
-    where = _setting_words(run, _labels(run, "capacity")[key[0]], _labels(run, "regularization")[key[1]])
-    body = [_p(f"Solid lines are measured means with the fold range shaded; the dashed line is the "
+    where = _setting_words(run, axis_labels(run, "capacity")[key[0]], axis_labels(run, "regularization")[key[1]])
+    body = [para(f"Solid lines are measured means with the fold range shaded; the dashed line is the "
                f"fitted curve carried beyond the data with its {inputs.confidence:.0%} band (hatched). "
                f"The dotted line is that setting's estimated floor, the dash-dot line the target.")]
-    body.append(_drawn(lambda: views.curve_figure(run, fits, key, target=inputs.target,
+    body.append(drawn(lambda: figures.curve_figure(run, fits, key, target=inputs.target,
                                                   confidence=inputs.confidence),
                        f"Learning curves at {where}",
                        f"Learning curves at the operating point ({where})."))
-    body.append(_drawn(lambda: views.small_multiples_figure(run, fits, target=inputs.target,
+    body.append(drawn(lambda: figures.small_multiples_figure(run, fits, target=inputs.target,
                                                             confidence=inputs.confidence),
                        "Learning curves for several settings",
                        "Learning curves across the capacity axis, each at its best regularisation."))
-    return _section("curves", number, "Learning curves", body)
+    return section("curves", number, "Learning curves", body)
 
 
 def _needed_words(s: Mapping) -> str:
@@ -772,7 +561,7 @@ def _settings_section(inputs: ReportInputs, number: int) -> Markup:
                       float(largest["train_error"].mean()), float(largest["validation_error"].mean())))
     lines.sort(key=lambda line: (line[3], line[0]))
     here = _operating_key(inputs)
-    capacity, regularization = _labels(run, "capacity"), _labels(run, "regularization")
+    capacity, regularization = axis_labels(run, "capacity"), axis_labels(run, "regularization")
     scale = float(ok["validation_error"].abs().max())
     table_rows, classes = [], []
     for key, size, train, validation in lines:
@@ -797,9 +586,9 @@ def _settings_section(inputs: ReportInputs, number: int) -> Markup:
              f"{inputs.confidence:.0%} band.")
     if inputs.target is not None:
         words += " 'Rows for the target' is the size where the band's upper edge reaches the target."
-    return _section("settings", number, "Every setting", [
-        _p(words),
-        _table([headers[n] for n in keep], [[row[n] for n in keep] for row in table_rows],
+    return section("settings", number, "Every setting", [
+        para(words),
+        table([headers[n] for n in keep], [[row[n] for n in keep] for row in table_rows],
                css="numbers settings", row_classes=classes,
                keep_whole=[i for i, n in enumerate(keep) if 2 <= n <= 7])])
 
@@ -858,7 +647,7 @@ def _backtest_section(inputs: ReportInputs, number: int) -> Markup:
             f"No backtest is stored in this run folder ({BACKTEST_FILE}). A backtest fits curves on a "
             f"fraction of the data and checks their forecast against the full size; it shows how far "
             f"to trust the forecasts on this data.")
-        return _section("backtest", number, "Backtest", [_p(note, "note")])
+        return section("backtest", number, "Backtest", [para(note, "note")])
     rows = result["rows"]
     median = result.get("median_abs_rel_error")
     coverage = result.get("coverage")
@@ -868,19 +657,19 @@ def _backtest_section(inputs: ReportInputs, number: int) -> Markup:
                f"error {'–' if median is None else f'{median:.1%}'}; the measured value fell inside "
                f"the {confidence:.0%} band for {'–' if coverage is None else f'{coverage:.0%}'} of "
                f"{len(rows)} settings.")
-    table = _table(["capacity", "regularisation", "curve", "forecast [band]", "measured",
+    rows_table = table(["capacity", "regularisation", "curve", "forecast [band]", "measured",
                     "relative error", "inside band"],
                    [[r.get("capacity", "?"), r.get("regularization", "?"), r.get("family", "?"),
                      _with_band(r["predicted"], [r["low"], r["high"]]), _num(r["measured"]),
                      "–" if r.get("rel_error") is None else f"{r['rel_error']:.1%}",
                      "yes" if r["low"] <= r["measured"] <= r["high"] else "no"] for r in rows],
                    css="numbers backtest")
-    return _section("backtest", number, "Backtest", [
+    return section("backtest", number, "Backtest", [
         Markup(f"<p id=\"backtest-summary\"{_value_attr(median)}>{esc(summary)}</p>"),
-        _drawn(lambda: backtest_figure(result), "Backtest: forecast against measured error",
+        drawn(lambda: backtest_figure(result), "Backtest: forecast against measured error",
                "Left: each setting's forecast (with its band) against what was measured. "
                "Right: relative errors, sorted; pale bars missed the band."),
-        table])
+        rows_table])
 
 
 def _skipped_section(inputs: ReportInputs, number: int) -> Markup:
@@ -889,23 +678,23 @@ def _skipped_section(inputs: ReportInputs, number: int) -> Markup:
     unfitted = list(getattr(inputs.fits, "unfitted", []))
     body = []
     if failed.empty and not unfitted:
-        body.append(_p(f"All {len(cells):,} fold fits finished and every setting got a learning curve."))
-        return _section("skipped", number, "Skipped and failed cells", body)
+        body.append(para(f"All {len(cells):,} fold fits finished and every setting got a learning curve."))
+        return section("skipped", number, "Skipped and failed cells", body)
     if not failed.empty:
-        body.append(_p(f"{len(failed):,} of {len(cells):,} fold fits failed; they are left out of "
+        body.append(para(f"{len(failed):,} of {len(cells):,} fold fits failed; they are left out of "
                        f"every number and picture above."))
         rows = [[str(c), str(r), f"{len(group):,}",
                  ", ".join(f"{int(m):,}" for m in sorted(group["train_size"].unique())),
                  str(group["message"].iloc[0])[:200]]
                 for (c, r), group in failed.groupby(["capacity", "regularization"], sort=False)]
-        body.append(_table(["capacity", "regularisation", "failed fits", "at sizes", "first message"],
+        body.append(table(["capacity", "regularisation", "failed fits", "at sizes", "first message"],
                            rows, css="failed"))
     if unfitted:
-        body.append(_p(f"{len(unfitted)} setting(s) got no learning curve, so they have no forecast:"))
-        body.append(_table(["capacity", "regularisation", "why"],
+        body.append(para(f"{len(unfitted)} setting(s) got no learning curve, so they have no forecast:"))
+        body.append(table(["capacity", "regularisation", "why"],
                            [[u.get("capacity", "?"), u.get("regularization", "?"), u.get("reason", "?")]
                             for u in unfitted], css="failed"))
-    return _section("skipped", number, "Skipped and failed cells", body)
+    return section("skipped", number, "Skipped and failed cells", body)
 
 
 def _cautions_section(inputs: ReportInputs, number: int) -> Markup:
@@ -925,7 +714,7 @@ def _cautions_section(inputs: ReportInputs, number: int) -> Markup:
         "of moves can change.",
     ]
     items = "".join(f"<li>{esc(p)}</li>" for p in points)
-    return _section("cautions", number, "Read with care", [Markup(f"<ul class=\"cautions\">{items}</ul>")])
+    return section("cautions", number, "Read with care", [Markup(f"<ul class=\"cautions\">{items}</ul>")])
 
 
 def _footer(inputs: ReportInputs) -> Markup:
@@ -934,12 +723,6 @@ def _footer(inputs: ReportInputs) -> Markup:
                   f"{esc(inputs.written.strftime('%Y-%m-%d %H:%M'))} UTC from {esc(inputs.run.run_dir or 'a grid in memory')}. "
                   f"Curves: {esc(inputs.n_boot)} bootstrap resamples, seed {esc(inputs.seed)}. "
                   f"This file is self-contained: it needs no network and no scripts.</p></footer>")
-
-
-def _style() -> str:
-    """The report's CSS, kept beside this module as package data (report.css, CSS only)."""
-    from importlib.resources import files
-    return files("gridplan").joinpath("report.css").read_text(encoding="utf-8")
 
 
 def report_html(inputs: ReportInputs) -> str:
@@ -957,27 +740,15 @@ def report_html(inputs: ReportInputs) -> str:
         number += 1
         parts.append(build(inputs, number))
     return render_page(title=f"gridplan report: {_run_name(inputs.run)}",
-                       style=Markup(_style()), masthead=_masthead(inputs),
-                       glance=_at_a_glance(inputs), sections=_join(parts),
+                       style=Markup(page_style()), masthead=_masthead(inputs),
+                       glance=_at_a_glance(inputs), sections=join(parts),
                        footer=_footer(inputs))
-
-
-def render_page(**fields: Any) -> str:
-    """The page template (report.html, package data) filled in, every field escaped.
-
-    Only Markup, built here from escaped parts, goes in as it is; any other
-    value is escaped, so a field cannot inject HTML by mistake.
-    """
-    from importlib.resources import files
-    from string import Template
-    page = Template(files("gridplan").joinpath("report.html").read_text(encoding="utf-8"))
-    return page.substitute({name: esc(value) for name, value in fields.items()})
 
 
 def _writable_target(run_dir: Path, out: str | Path | None) -> Path:
     """The report path, refused early when it cannot be written."""
     path = Path(out) if out is not None else run_dir / REPORT_NAME
-    from gridplan.runs import refuse_run_file
+    from gridplan.measuring.runs import refuse_run_file
     refuse_run_file(run_dir, path, run_dir / REPORT_NAME)
     if path.is_dir():
         raise GridplanError(f"cannot write the report to {path}: it is a folder; give a file name "
@@ -999,10 +770,10 @@ def write_report(run_dir: str | Path, out: str | Path | None = None, *,
     """Write the HTML report of a run (default RUN_DIR/report.html) and return its path.
 
     `target`, `confidence` and `at` ("CAPACITY,REG") override the config as in
-    `gridplan.advisor.advise`. Without a known target the report is still
+    `gridplan.deciding.advisor.advise`. Without a known target the report is still
     written, without a verdict or plan, and says why.
     """
-    from gridplan.store import STORE_NAME
+    from gridplan.measuring.store import STORE_NAME
     run_dir = Path(run_dir)
     if not (run_dir / STORE_NAME).is_file():
         raise GridplanError(f"{run_dir} is not a gridplan run folder (no {STORE_NAME}).")

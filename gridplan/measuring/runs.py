@@ -12,10 +12,10 @@ from pathlib import Path
 
 import pandas as pd
 
-from gridplan.checks import check_path_text
-from gridplan.config import Config, parse_config
-from gridplan.errors import GridplanError
-from gridplan.store import CONFIG_COPY, CURVES_NAME, MODELS_KEY, STORE_NAME, Store
+from gridplan.common.checks import check_path_text
+from gridplan.common.errors import GridplanError
+from gridplan.measuring.config import Config, parse_config
+from gridplan.measuring.store import CONFIG_COPY, CURVES_NAME, MODELS_KEY, STORE_NAME, Store
 
 LOCK_NAME = "run.lock"
 

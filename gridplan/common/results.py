@@ -15,7 +15,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any, ClassVar, Iterator
 
-from gridplan.jsonable import plain
+from gridplan.common.jsonable import plain
 
 
 class Record(Mapping):
@@ -183,7 +183,7 @@ class Advice(Record):
     operating_point: OperatingPoint
     verdict: str
     verdict_reason: str
-    diagnosis: dict                # gridplan.diagnosis.SettingDiagnosis.as_dict()
+    diagnosis: dict                # gridplan.deciding.diagnosis.SettingDiagnosis.as_dict()
     thresholds: dict
     noise_floor: float | None      # the data's floor; None when the run gives no evidence
     noise_floor_band: list[float] | None
@@ -195,7 +195,7 @@ class Advice(Record):
     plateau_band: list[float] | None
     plateau_setting: str | None
     plateau_model: str | None
-    calibration: dict | None       # gridplan.calibration.Calibration.as_dict()
+    calibration: dict | None       # gridplan.deciding.calibration.Calibration.as_dict()
     reachable: bool
     binding_limit: str | None
     binding_detail: str | None

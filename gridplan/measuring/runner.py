@@ -3,7 +3,7 @@
 A task is the unit a worker runs. Plain tasks fit one pipeline for one
 (capacity, regularisation, size, fold). Fast-path tasks cover many cells at
 once (every alpha and degree of one training subset; every depth of one tree)
-and give the same numbers as the plain fits (see `gridplan.fastpaths`).
+and give the same numbers as the plain fits (see `gridplan.measuring.fastpaths`).
 """
 
 from __future__ import annotations
@@ -18,10 +18,10 @@ from typing import Callable, Iterator
 
 import numpy as np
 
-from gridplan import metrics
-from gridplan.families import ModelPlan, build_model, make_encoder, needs_encoder
-from gridplan.spec import GridSpec
-from gridplan.store import FoldRow, Store
+from gridplan.common import metrics
+from gridplan.measuring.families import ModelPlan, build_model, make_encoder, needs_encoder
+from gridplan.measuring.spec import GridSpec
+from gridplan.measuring.store import FoldRow, Store
 
 ProgressCallback = Callable[[int, int], None]   # (fits done, fits total)
 
@@ -81,7 +81,7 @@ def workload_of(spec: GridSpec) -> Workload:
 
 def fast_path_kind(plan: ModelPlan, metric: str) -> str | None:
     """Which fast path a grid can take, or None for plain fits."""
-    from gridplan.fastpaths import has_fast_path, tree_params_commute
+    from gridplan.measuring.fastpaths import has_fast_path, tree_params_commute
     if plan.family is None:
         return None
     if not has_fast_path(plan.family, plan.regularization_param, plan.task, metric):
@@ -159,7 +159,7 @@ def with_shared_features(tasks: list[Task], work: Workload) -> Workload:
         return work
     from dataclasses import replace
 
-    from gridplan.fastpaths import n_poly_columns, polynomial_features
+    from gridplan.measuring.fastpaths import n_poly_columns, polynomial_features
     top = max(int(plan.capacity_values[ci]) for t in tasks for ci in t.capacity_indices)
     if work.X.shape[0] * n_poly_columns(work.X.shape[1], top) * 8 > SHARED_FEATURES_MAX_BYTES:
         return work       # each task builds its own rows' features instead
@@ -312,7 +312,7 @@ def _cell(fast) -> tuple:
 
 
 def _ridge_path(task: Task, work: Workload, fold, size: int) -> dict:
-    from gridplan.fastpaths import poly_ridge_grid
+    from gridplan.measuring.fastpaths import poly_ridge_grid
     plan = work.plan
     Z_fit, y_fit, Z_val, y_val = _encoded(work, task.capacity_indices[0], fold, size)
     if plan.feature_sets is None:
@@ -335,7 +335,7 @@ def _ridge_path(task: Task, work: Workload, fold, size: int) -> dict:
 
 
 def _tree_path(task: Task, work: Workload, fold, size: int) -> dict:
-    from gridplan.fastpaths import tree_depth_grid
+    from gridplan.measuring.fastpaths import tree_depth_grid
     plan = work.plan
     ri = task.regularization_indices[0]
     Z_fit, y_fit, Z_val, y_val = _encoded(work, 0, fold, size)
@@ -385,7 +385,7 @@ def execute(tasks: list[Task], work: Workload, *, jobs: int = 1, backend: str | 
     """Yield the rows of each task (or chunk of tasks) as it finishes, in any order.
 
     Locally this uses joblib's loky backend with one BLAS thread per worker;
-    `backend="dask"` sends the same work to a dask cluster (see gridplan.cluster).
+    `backend="dask"` sends the same work to a dask cluster (see gridplan.measuring.cluster).
     """
     if jobs == 1 and backend is None:
         work = with_shared_features(tasks, work)

@@ -1,6 +1,6 @@
 """Pictures of a run: grid heatmaps and learning-curve plots, as matplotlib Figures.
 
-Views read a run through `gridplan.runs.open_run` (its `cells()` table, axes and
+Views read a run through `gridplan.measuring.runs.open_run` (its `cells()` table, axes and
 meta) and take curve fits and advice as arguments; nothing below imports views.
 Figures are built without pyplot, so none lingers in a global list; save them
 with `save_figure` (PNG or SVG by extension) or embed them with
@@ -32,16 +32,16 @@ from typing import TYPE_CHECKING, Any, Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from gridplan.errors import GridplanError
-from gridplan.metrics import metric_label
-from gridplan.wording import plural
+from gridplan.common.errors import GridplanError
+from gridplan.common.metrics import metric_label
+from gridplan.common.wording import plural
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.axes import Axes
     from matplotlib.figure import Figure
 
-    from gridplan.curves import CurveFit
-    from gridplan.runs import Run
+    from gridplan.deciding.curves import CurveFit
+    from gridplan.measuring.runs import Run
 
 SHOWS = ("validation", "train", "gap")
 HEATMAP_AXES = ("capacity", "regularization")
@@ -151,7 +151,7 @@ def _confidence_default(run: "Run", confidence: float | None) -> float:
     else:
         config = getattr(run, "config", None)
         value = float(getattr(config, "confidence", 0.9) or 0.9) if config is not None else 0.9
-    from gridplan.checks import check_confidence
+    from gridplan.common.checks import check_confidence
     return check_confidence(value)
 
 

@@ -62,7 +62,7 @@ from typing import Sequence
 
 import numpy as np
 
-from gridplan.metrics import (
+from gridplan.common.metrics import (
     CLASSIFICATION_METRICS,
     REGRESSION_METRICS,
     error_of,

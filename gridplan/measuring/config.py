@@ -2,7 +2,7 @@
 
 Every problem becomes a `GridplanError` naming the file, the key and the value.
 Data-dependent checks (sizes against the training fold, columns) live in
-`gridplan.data` and `gridplan.spec`.
+`gridplan.measuring.data` and `gridplan.measuring.spec`.
 """
 
 from __future__ import annotations
@@ -14,8 +14,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from gridplan.checks import check_confidence, check_metric, check_regular_file
-from gridplan.errors import InputError
+from gridplan.common.checks import check_confidence, check_metric, check_regular_file, check_target
+from gridplan.common.errors import InputError
 
 FAMILIES = ("poly-ridge", "tree")
 TASKS = ("regression", "classification")
@@ -488,8 +488,8 @@ def parse_config(raw: dict[str, Any], path: Path, text: str = "") -> Config:
     metric = check_metric(goal.get("metric", "str", default=DEFAULT_METRIC[task]), task,
                           goal.where("metric"))
     target_error = goal.get("target", "number")
-    if target_error is not None and target_error <= 0:
-        raise InputError(f"{goal.where('target')} must be a positive error, got {target_error:g}.")
+    if target_error is not None:
+        check_target(target_error, goal.where("target"))
     confidence = goal.get("confidence", "number", default=0.9)
     check_confidence(confidence, goal.where("confidence"))
 

@@ -7,11 +7,11 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from gridplan.config import Config
-from gridplan.data import Dataset, load_dataset
-from gridplan.errors import InputError
-from gridplan.families import ModelPlan, check_polynomial_memory, check_takes_weights, plan_model
-from gridplan.splits import Fold, make_folds, size_ladder, smallest_training_fold
+from gridplan.common.errors import InputError
+from gridplan.measuring.config import Config
+from gridplan.measuring.data import Dataset, load_dataset
+from gridplan.measuring.families import ModelPlan, check_polynomial_memory, check_takes_weights, plan_model
+from gridplan.measuring.splits import Fold, make_folds, size_ladder, smallest_training_fold
 
 
 @dataclass(frozen=True)

@@ -1,7 +1,7 @@
 """Advice for a finished run: curves -> diagnosis -> plan, as a JSON-ready dict and as text.
 
 `advise(run_dir, target=...)` reads the run only through the store
-(`gridplan.runs.open_run`), fits the learning curves, diagnoses every setting
+(`gridplan.measuring.runs.open_run`), fits the learning curves, diagnoses every setting
 and the operating point, and plans the cheapest way to the target under the
 config's costs (options override them).  `render_advice` turns the dict into
 terminal text.
@@ -16,10 +16,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from gridplan.checks import check_confidence
-from gridplan.config import Costs
-from gridplan.curves import DEFAULT_BOOT, DEFAULT_MAX_SIZE, GridCurves
-from gridplan.diagnosis import (
+from gridplan.common.checks import DEFAULT_BOOT, check_confidence, check_target
+from gridplan.common.errors import GridplanError
+from gridplan.common.jsonable import plain as _plain
+from gridplan.common.results import Advice
+from gridplan.common.wording import money, number
+from gridplan.deciding.curves import DEFAULT_MAX_SIZE
+from gridplan.deciding.diagnosis import (
     NoiseFloor,
     Plateau,
     Thresholds,
@@ -29,9 +32,8 @@ from gridplan.diagnosis import (
     diagnose_setting,
     estimate_noise_floor,
 )
-from gridplan.errors import GridplanError
-from gridplan.jsonable import plain as _plain
-from gridplan.planner import (
+from gridplan.deciding.gridfit import GridCurves
+from gridplan.deciding.planner import (
     CostModel,
     State,
     build_state_graph,
@@ -41,9 +43,8 @@ from gridplan.planner import (
     size_ladder,
     state_error_forecasts,
 )
-from gridplan.results import Advice
-from gridplan.runs import open_run
-from gridplan.wording import money, sig
+from gridplan.measuring.config import Costs
+from gridplan.measuring.runs import open_run
 
 # --- reading the user's choices ---------------------------------------------------------
 
@@ -99,10 +100,7 @@ def _resolve_target(target, config) -> float:
         target = config.target_error if config is not None else None
     if target is None:
         raise GridplanError("no target error given: pass a target (--target) or set [goal] target in the config.")
-    if isinstance(target, bool) or not isinstance(target, (int, float)) or not math.isfinite(target) \
-            or target <= 0:
-        raise GridplanError(f"the target error must be a positive number, got {target!r}.")
-    return float(target)
+    return check_target(target)
 
 
 def _resolve_confidence(confidence, config) -> float:
@@ -267,8 +265,8 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
     if len(names) == 1:
         return Advice.from_dict(_with_models([_advise_model(run, at=at, curves=curves, **options)],
                                              0, None))
-    from gridplan.curves import floor_across_models
-    from gridplan.curvestore import cached_curves
+    from gridplan.deciding.curvestore import cached_curves
+    from gridplan.deciding.floor import floor_across_models
     runs = [run.for_model(i) for i in range(len(names))]
     grids = [cached_curves(r.run_dir, r.cells(), n_boot=n_boot, seed=seed) for r in runs]
     confidence_value = _resolve_confidence(confidence, run.config)
@@ -337,7 +335,7 @@ def _advise_model(run, *, target: float | None, at: str | None, confidence: floa
         return f"{capacity_labels[ci]},{regularization_labels[ri]}"
 
     if curves is None:
-        from gridplan.curvestore import cached_curves
+        from gridplan.deciding.curvestore import cached_curves
         curves = cached_curves(run_dir, cells, n_boot=n_boot, seed=seed)
     test_sizes = run.meta.get("test_sizes") or []
     n_test = float(np.mean(test_sizes)) if test_sizes else float(
@@ -595,7 +593,7 @@ def headline(advice: dict) -> str:
         d = advice["diagnosis"]
         return (f"Nothing to do: {in_model}{capacity_name} {op['capacity']}, {regularization_name} "
                 f"{op['regularization']} at {op['size']:,} rows already meets the target "
-                f"{target:g} (measured {_g(d['validation_error'])}).")
+                f"{target:g} (measured {number(d['validation_error'])}).")
     end = advice["plan"][-1]["to"]
     moves = []
     if end.get("model") != op.get("model"):
@@ -612,8 +610,8 @@ def headline(advice: dict) -> str:
         rows = f"label about {_about(end['size'] - op['size'])} more rows"
         words = f"{words} and {rows}" if words else rows[0].upper() + rows[1:]
     low, high = end["interval"]
-    return (f"{words}: expected {_g(end['predicted_error'])} ({_g(low)}-{_g(high)}), "
-            f"cost {_money(advice['plan_cost'])}.")
+    return (f"{words}: expected {number(end['predicted_error'])} ({number(low)}-{number(high)}), "
+            f"cost {money(advice['plan_cost'])}.")
 
 
 def _about(rows: int) -> str:
@@ -634,178 +632,3 @@ def _step_words(edge, capacity_labels, regularization_labels, meta: dict) -> str
         return f"{edge.action} to {name} {capacity_labels[s.capacity_index]}"
     name = meta.get("regularization_param") or "regularisation"
     return f"{edge.action} to {name} {regularization_labels[s.regularization_index]}"
-
-
-# --- text ------------------------------------------------------------------------------------------
-
-def _g(value, digits: int = 3) -> str:
-    """Three significant figures."""
-    return "-" if value is None else sig(value, digits)
-
-
-def _money(value) -> str:
-    """A cost: whole numbers without decimals, others with two (wording.money)."""
-    return money(value)
-
-
-def _interval(pair) -> str:
-    return "-" if not pair or pair[0] is None else f"[{_g(pair[0])}, {_g(pair[1])}]"
-
-
-def _test_words(test: dict | None, what: str) -> str:
-    if not test:
-        return f"{what}: too few folds to test"
-    return (f"{what} {_g(test['mean'])}, {test['confidence']:.0%} interval {_interval([test['low'], test['high']])}, "
-            f"t={_g(test['t'], 3)} on {test['dof']} df, one-sided p={_g(test['p_value'], 2)} "
-            f"(corrected variance factor {_g(test['factor'], 4)})")
-
-
-def left_with_unlimited_data(left: float) -> str:
-    """What the part of the excess left with unlimited data (asymptote minus target) means."""
-    return ("bias + noise that more data cannot remove" if left > 0
-            else "below zero: with enough data this setting alone could reach the target")
-
-
-def mean_meets_but_interval_not(confidence: float) -> str:
-    """Why a plan is offered although the verdict is fine."""
-    return (f"The mean validation error meets the target, but its {confidence:.0%} interval "
-            f"does not yet lie below it.")
-
-
-def render_advice(advice: dict) -> str:
-    """Terminal text for an `advise` result."""
-    op, d = advice["operating_point"], advice["diagnosis"]
-    models = advice.get("models") or []
-    several = len(models) > 1
-
-    def setting(where: dict) -> str:
-        """CAPACITY,REG, with the model's name first when the run has several."""
-        text = f"{where['capacity']},{where['regularization']}"
-        return f"{where['model']} {text}" if several else text
-
-    lines = [
-        advice["headline"],
-        "",
-        f"Advice for {advice['run_dir']}  ({advice['metric']}, target {advice['target']:g}, "
-        f"{advice['confidence']:.0%} confidence)",
-        f"Operating point: {'model ' + op['model'] + ', ' if several else ''}capacity "
-        f"{op['capacity']}, regularisation {op['regularization']}, "
-        f"{op['size']:,} training rows ({op['chosen']})",
-    ]
-    if several:
-        lines.append("Models (each at its best measured setting):")
-        for m in models:
-            plateau = ("-" if m["plateau"] is None else
-                       f"{_g(m['plateau'])} {_interval(m['plateau_band'])}")
-            own = ("meets the target as it is" if m["reachable"] and not m["plan_cost"] else
-                   f"own plan {_money(m['plan_cost'])}" if m["reachable"]
-                   else f"no plan of its own ({m['binding_limit']})")
-            lines.append(f"  {m['name']:<12} {m['family'] or '':<12} {m['capacity_param']} / "
-                         f"{m['regularization_param']} {m['best_setting']:<12} validation "
-                         f"{_g(m['validation_error'])}   plateau {plateau}   {own}")
-    lines += [
-        "",
-        f"Verdict: {advice['verdict'].upper()}",
-        f"  because {advice['verdict_reason']}",
-        f"  training error {_g(d['train_error'])}   validation error {_g(d['validation_error'])}   "
-        f"over {d['units']} folds",
-        f"  {_test_words(d['gap_test'], 'gap')}",
-    ]
-    if d["previous_size"] is not None:
-        what = f"drop per doubling ({d['previous_size']:,} -> {d['size']:,})"
-        lines.append(f"  {_test_words(d['drop_per_doubling'], what)}")
-    if d["curve_drop_next_doubling"] is not None:
-        lines.append(f"  fitted curve: drop over the next doubling {_g(d['curve_drop_next_doubling'])}, "
-                     f"this setting's asymptote {_g(d['setting_asymptote'])} "
-                     f"{_interval(d['setting_asymptote_band'])}")
-    if advice["noise_floor"] is not None:
-        source = (f"model {advice['noise_floor_model']} setting" if several else "setting")
-        lines.append(f"  noise floor {_g(advice['noise_floor'])} {_interval(advice['noise_floor_band'])}"
-                     f" (from {source} {advice['noise_floor_setting']}: "
-                     f"{advice['noise_floor_evidence']})")
-    else:
-        kinds = "capacity or model" if several else "capacity"
-        whose = (f"the lowest plateau of any model, {advice.get('plateau_model')}'s" if several
-                 else "this model's lowest plateau")
-        lines.append(f"  noise floor unknown (no converged settings of different {kinds} agree, "
-                     f"and none has its training error below its plateau); {whose} "
-                     f"{_g(advice['plateau'])} {_interval(advice['plateau_band'])}"
-                     f" (setting {advice['plateau_setting']}) bounds it from above")
-    if advice.get("calibration"):
-        from gridplan.calibration import Calibration
-        lines.append(f"  forecasts: {Calibration(**advice['calibration']).sentence()}")
-    if advice["noise_floor_at_capacity_edge"]:
-        lines.append("  (found at the grid's largest capacity and still falling with capacity: it may "
-                     "include bias, so no noise-floor verdict is given)")
-    if d["removable_by_data"] is not None:
-        left = d["not_removable"]
-        meaning = left_with_unlimited_data(left)
-        lines.append(f"  excess over target {_g(d['validation_error'] - advice['target'])} = "
-                     f"{_g(d['removable_by_data'])} {_interval(d['removable_band'])} more data can remove"
-                     f" + {_g(left)} {_interval(d['not_removable_band'])} left with unlimited data "
-                     f"(asymptote minus target; {meaning})")
-    lines.append("")
-    if advice["reachable"]:
-        if not advice["plan"]:
-            lines.append("Plan: nothing to do; the operating point already meets the target.")
-        else:
-            if advice["verdict"] == "fine":
-                lines.append(mean_meets_but_interval_not(advice["confidence"]))
-            lines.append(f"Cheapest plan (total cost {_money(advice['plan_cost'])}; a state meets the "
-                         f"target when its whole {advice['confidence']:.0%} interval is at or below it):")
-            for i, step in enumerate(advice["plan"], 1):
-                to = step["to"]
-                lines.append(f"  {i}. {step['action']:<20} -> {setting(to)} "
-                             f"at {to['size']:,}   cost {_money(step['cost'])}   cumulative "
-                             f"{_money(step['cumulative_cost'])}   predicted error "
-                             f"{_g(step['predicted_error'])} {_interval(to['interval'])}"
-                             f"{' (measured)' if to['measured'] else ''}")
-                if step.get("worse_on_the_way"):
-                    lines.append(f"     the error rises on this step, from "
-                                 f"{_g(step['from']['predicted_error'])}: it is the cheapest way "
-                                 f"to the steps after it, which end at the target")
-    else:
-        lines.append(f"No plan reaches the target. Binding limit: {advice['binding_limit']}.")
-        lines.append(f"  {advice['binding_detail']}")
-    lines += ["", "Next actions, cheapest plan first:"]
-    shown_data, other_sizes, tied = False, [], {}
-    for item in advice["actions"]:
-        if item["action"] == "more-data" and item["to"] is not None:
-            if shown_data:
-                other_sizes.append(f"{item['to']['size']:,}")
-                continue
-            shown_data = True
-        if item["reachable"] and item["plan_cost"] in tied:
-            tied[item["plan_cost"]].append(f"{item['action']} to {setting(item['to'])}")
-            continue
-        if item["reachable"]:
-            tied[item["plan_cost"]] = []
-        if item["to"] is None:
-            lines.append(f"  {item['action']:<20} not possible: {item['reason']}")
-            continue
-        to = item["to"]
-        where = (f"to {to['size']:,} rows" if item["action"] == "more-data"
-                 else f"to {setting(to)}")
-        head = (f"  {item['action']:<20} {where:<18} step {_money(item['step_cost'])}  "
-                f"error {_g(item['predicted_error'])} {_interval(item['interval'])}")
-        if item["reachable"]:
-            tail = f"  plan {_money(item['plan_cost'])}" + (
-                f" (then {', '.join(item['then'])})" if item["then"] else "")
-        else:
-            tail = f"  cannot reach: {item['reason']}"
-        lines.append(head + tail)
-    for cost, others in tied.items():
-        if others:
-            lines.append(f"  {'':<20} same plan cost {_money(cost)} also by: {'; '.join(others)}")
-    if other_sizes:
-        lines.append(f"  {'':<20} more data to other sizes, each with a dearer plan or none: "
-                     f"{', '.join(other_sizes)} rows")
-    skipped = advice["skipped"]
-    if skipped["failed_rows"] or skipped["unfitted"]:
-        lines += ["", f"Skipped: {skipped['failed_rows']} failed fold rows"]
-        for s in skipped["settings"]:
-            lines.append(f"  {s['capacity']},{s['regularization']}: {s['failed_rows']} failed "
-                         f"({s['example']})")
-        for u in skipped["unfitted"]:
-            lines.append(f"  {u['capacity']},{u['regularization']}: no curve ({u['reason']})")
-    return "\n".join(lines)

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 from sklearn.model_selection import RepeatedKFold, RepeatedStratifiedKFold
 
-from gridplan.errors import InputError
+from gridplan.common.errors import InputError
 
 
 @dataclass(frozen=True)

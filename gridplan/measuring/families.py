@@ -23,9 +23,9 @@ from sklearn.pipeline import Pipeline
 from sklearn.preprocessing import OneHotEncoder, PolynomialFeatures, StandardScaler
 from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
-from gridplan.config import Config, _suggest
-from gridplan.data import Dataset
-from gridplan.errors import InputError
+from gridplan.common.errors import InputError
+from gridplan.measuring.config import Config, _suggest
+from gridplan.measuring.data import Dataset
 
 POLY_FAMILIES = ("poly-ridge", "poly-logistic")
 

@@ -19,3 +19,13 @@ def money(value: float | None, missing: str = "-") -> str:
     if value is None:
         return missing
     return f"{value:,.0f}" if float(value).is_integer() else f"{value:,.2f}"
+
+
+def number(value: float | None, digits: int = 3) -> str:
+    """`sig`, with "-" for a missing value."""
+    return "-" if value is None else sig(value, digits)
+
+
+def interval(pair) -> str:
+    """'[0.101, 0.134]', or "-" when the interval is missing."""
+    return "-" if not pair or pair[0] is None else f"[{number(pair[0])}, {number(pair[1])}]"

@@ -32,8 +32,8 @@ from typing import Callable, Hashable, Mapping, Sequence
 
 import numpy as np
 
-from gridplan.config import Costs
-from gridplan.errors import GridplanError
+from gridplan.common.errors import GridplanError
+from gridplan.measuring.config import Costs
 
 ACTIONS = ("more-data", "more-capacity", "less-capacity", "more-regularization",
            "less-regularization")

@@ -17,10 +17,10 @@ from typing import TYPE_CHECKING, Callable
 from joblib import register_parallel_backend
 from joblib._dask import DaskDistributedBackend
 
-from gridplan.errors import ClusterError
-from gridplan.runner import ProgressCallback, build_tasks, run_grid
-from gridplan.spec import GridSpec
-from gridplan.store import Store
+from gridplan.common.errors import ClusterError
+from gridplan.measuring.runner import ProgressCallback, build_tasks, run_grid
+from gridplan.measuring.spec import GridSpec
+from gridplan.measuring.store import Store
 
 if TYPE_CHECKING:
     from distributed import Client

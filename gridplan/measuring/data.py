@@ -11,9 +11,9 @@ import numpy as np
 import pandas as pd
 from pandas.api.types import is_numeric_dtype
 
-from gridplan.checks import check_regular_file
-from gridplan.config import Config
-from gridplan.errors import GridplanError, InputError
+from gridplan.common.checks import check_regular_file
+from gridplan.common.errors import GridplanError, InputError
+from gridplan.measuring.config import Config
 
 
 @dataclass(frozen=True)

@@ -10,7 +10,7 @@ import math
 import stat
 from pathlib import Path
 
-from gridplan.errors import InputError
+from gridplan.common.errors import InputError
 
 #: Bootstrap resamples per curve: one default for every command and function
 #: (so they agree on one run), and the most a curve may ask for.
@@ -47,7 +47,7 @@ def check_boot(n_boot, name: str = "n_boot") -> int:
 
 def check_metric(metric: str, task: str, where: str = "metric") -> str:
     """A metric that fits the task: one of gridplan's for that task, or a scikit-learn scorer name."""
-    from gridplan.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
+    from gridplan.common.metrics import CLASSIFICATION_METRICS, REGRESSION_METRICS, is_scorer
     allowed = REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
     if metric not in allowed and (metric in REGRESSION_METRICS + CLASSIFICATION_METRICS
                                   or not is_scorer(metric)):

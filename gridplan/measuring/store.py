@@ -14,11 +14,11 @@ from typing import Any, Iterable, NamedTuple
 
 import pandas as pd
 
-from gridplan.errors import GridplanError
+from gridplan.common.errors import GridplanError
 
 STORE_NAME = "store.sqlite"
 CONFIG_COPY = "config.toml"
-CURVES_NAME = "curves.json"      # fitted curves kept by gridplan.curvestore
+CURVES_NAME = "curves.json"      # fitted curves kept by gridplan.deciding.curvestore
 
 SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);

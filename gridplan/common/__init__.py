@@ -1,0 +1,1 @@
+"""Shared by every side: errors, input checks, words and numbers, typed results, metrics."""

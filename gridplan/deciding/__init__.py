@@ -1,0 +1,1 @@
+"""The deciding side: learning curves, noise floor, diagnosis, plan and advice, read from the store."""

@@ -1,0 +1,1 @@
+"""The showing side: terminal text, figures and the HTML report."""
