@@ -91,7 +91,7 @@ def factorisation_rate(quick: bool, repeats: int) -> tuple[float, float, float, 
     from vs_plain_loop import standard_grids, write_config
 
     from gridplan.api import check
-    from gridplan.runner import build_tasks, run_task, workload_of
+    from gridplan.measuring.runner import build_tasks, run_task, workload_of
 
     _, grid = standard_grids(quick)
     with tempfile.TemporaryDirectory(prefix="gridplan-blas-") as tmp:

@@ -188,7 +188,7 @@ def write_member(member: Member, folder: Path) -> Path:
 def backtest_member(member: Member, folder: Path, jobs: int) -> dict:
     """Backtest one member; its rows, summary figures and calibration."""
     from gridplan.backtest import backtest
-    from gridplan.config import load_config
+    from gridplan.measuring.config import load_config
     folder.mkdir(parents=True, exist_ok=True)
     config = load_config(write_member(member, folder))
     result = backtest(config, fraction=FRACTION, out=folder / "run", jobs=jobs,
