@@ -16,6 +16,14 @@ Standard grids (3 raw inputs, n = 2000, 8 training sizes, 5 folds):
          12 alphas log-spaced 1e-6 .. 1e3
 ``--quick`` shrinks both (n = 600, degrees 1-6, 6 alphas, depths 1-8, 5 sizes).
 
+``--whole-process`` times both sides as fresh processes instead, start-up
+included: ``python -m gridplan run CONFIG`` against a script that imports
+scikit-learn and runs the same ``learning_curve`` loop on the same folds
+(handed over in a .npz file), on the ridge grid at n = 8,000 (10 degrees x 12
+alphas x 10 sizes up to 6,400 rows x 5 folds = 6,000 fits). It also prints
+gridplan's start-up: a fresh process importing what ``run`` needs, and
+``gridplan --help``.
+
 Prints one line per grid; the last line is the ridge grid's
 ``ratio=<plain / gridplan> max_rel_diff=<largest relative difference>``.
 """
@@ -24,6 +32,8 @@ from __future__ import annotations
 
 import argparse
 import statistics
+import subprocess
+import sys
 import tempfile
 import time
 import warnings
@@ -190,16 +200,94 @@ def bench(grid: Grid, folder: Path, repeats: int, plain_repeats: int) -> str:
     return f"ratio={ratio:.1f} max_rel_diff={max(max(train), max(validation)):.1e}"
 
 
+PLAIN_SCRIPT = """
+import sys
+import numpy as np
+from sklearn.linear_model import Ridge
+from sklearn.model_selection import learning_curve
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import PolynomialFeatures, StandardScaler
+
+data = np.load(sys.argv[1])
+X, y, sizes = data["X"], data["y"], [int(s) for s in data["sizes"]]
+cv = [(data[f"train{k}"], data[f"test{k}"]) for k in range(int(data["folds"]))]
+out = []
+for degree in data["degrees"]:
+    for alpha in data["alphas"]:
+        model = make_pipeline(PolynomialFeatures(int(degree), include_bias=False), StandardScaler(),
+                              Ridge(alpha=float(alpha)))
+        _, train, test = learning_curve(model, X, y, cv=cv, train_sizes=sizes, shuffle=False,
+                                        scoring="neg_mean_squared_error", n_jobs=int(data["jobs"]))
+        out.append(-np.stack([train, test]))
+np.save(sys.argv[2], np.stack(out))
+"""
+
+
+def fresh(args: list[str], cwd: Path) -> float:
+    """Wall time of one fresh process, output discarded."""
+    started = time.perf_counter()
+    subprocess.run(args, cwd=cwd, check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    return time.perf_counter() - started
+
+
+def whole_process(folder: Path, repeats: int, plain_repeats: int) -> str:
+    """The 6,000-fit ridge grid at n = 8,000, both sides as whole processes."""
+    from gridplan.api import check, open_run
+
+    grid = Grid("poly-ridge", 8000, tuple(range(1, 11)), tuple(np.logspace(-6, 3, 12)), 10)
+    config_path = write_config(folder, grid)
+    spec = check(config_path)
+    folds = {f"train{k}": fold.train for k, fold in enumerate(spec.folds)}
+    folds |= {f"test{k}": fold.test for k, fold in enumerate(spec.folds)}
+    np.savez(folder / "plain.npz", X=spec.dataset.X.to_numpy(dtype=float), y=spec.dataset.y,
+             sizes=np.asarray(spec.sizes), folds=len(spec.folds), degrees=np.asarray(grid.capacities),
+             alphas=np.asarray(grid.alphas), jobs=N_JOBS, **folds)
+    (folder / "plain.py").write_text(PLAIN_SCRIPT, encoding="utf-8")
+    python = sys.executable
+    imports = "from gridplan import api; from gridplan.measuring import runner"
+    start_up = min(fresh([python, "-c", imports], folder) for _ in range(3))
+    help_time = min(fresh([python, "-m", "gridplan", "--help"], folder) for _ in range(3))
+    ours = []
+    for k in range(repeats):
+        stop_worker_pool()
+        ours.append(fresh([python, "-m", "gridplan", "run", str(config_path), "--out",
+                           str(folder / f"whole-{k}"), "--jobs", str(N_JOBS)], folder))
+    plain = [fresh([python, str(folder / "plain.py"), str(folder / "plain.npz"),
+                    str(folder / "plain.npy")], folder) for _ in range(plain_repeats)]
+    reference = np.load(folder / "plain.npy")
+    cells = open_run(folder / "whole-0").cells()
+    worst = 0.0
+    for n, (ci, ri) in enumerate((c, r) for c in range(len(grid.capacities)) for r in range(len(grid.alphas))):
+        rows = cells[(cells["capacity_index"] == ci) & (cells["regularization_index"] == ri)]
+        for side, column in enumerate(("train_error", "validation_error")):
+            errors = np.full(reference.shape[2:], np.nan)
+            errors[rows["size_index"], rows["fold"]] = rows[column]
+            worst = max(worst, max_rel_diff(errors, reference[n, side]))
+    ratio = min(plain) / min(ours)
+    print(f"whole processes: poly-ridge {len(grid.capacities)} degrees x {len(grid.alphas)} alphas x "
+          f"{len(spec.sizes)} sizes {list(spec.sizes)} x {grid.folds} folds = {spec.n_fits} fits, "
+          f"n = {grid.n_rows}")
+    print(f"  start-up: imports for run {start_up:.2f} s, gridplan --help {help_time:.2f} s (best of 3)")
+    print(f"  plain loop script (learning_curve, n_jobs={N_JOBS}): {spread(plain)}")
+    print(f"  python -m gridplan run --jobs {N_JOBS}: {spread(ours)}")
+    return f"whole-process ratio={ratio:.1f} max_rel_diff={worst:.1e} start_up={start_up:.2f}s"
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="smaller grids, under a minute")
     parser.add_argument("--repeats", type=int, default=3, help="gridplan runs per grid (best counts)")
     parser.add_argument("--plain-repeats", type=int, default=1, help="plain-loop runs per grid")
     parser.add_argument("--only", choices=("tree", "poly-ridge"), help="run one grid only")
+    parser.add_argument("--whole-process", action="store_true",
+                        help="the 6,000-fit ridge grid as whole processes, start-up included")
     args = parser.parse_args()
     warnings.simplefilter("ignore")
     lines = []
     with tempfile.TemporaryDirectory(prefix="gridplan-bench-") as tmp:
+        if args.whole_process:
+            print(whole_process(Path(tmp), args.repeats, args.plain_repeats), flush=True)
+            return
         for grid in standard_grids(args.quick):
             if args.only and grid.family != args.only:
                 continue

@@ -13,19 +13,18 @@ import inspect
 import math
 import os
 from dataclasses import dataclass
-from typing import Any
-
-from sklearn.base import clone, is_classifier, is_regressor
-from sklearn.compose import ColumnTransformer
-from sklearn.impute import SimpleImputer
-from sklearn.linear_model import LogisticRegression, Ridge, RidgeClassifier
-from sklearn.pipeline import Pipeline
-from sklearn.preprocessing import OneHotEncoder, PolynomialFeatures, StandardScaler
-from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
+from typing import TYPE_CHECKING, Any
 
 from gridplan.common.errors import InputError
 from gridplan.measuring.config import Config, _suggest
 from gridplan.measuring.data import Dataset
+
+if TYPE_CHECKING:  # pragma: no cover - typing only
+    from sklearn.compose import ColumnTransformer
+    from sklearn.pipeline import Pipeline
+
+# scikit-learn is imported inside the functions that build estimators: a run
+# whose every cell has an exact shortcut (plain poly-ridge) never loads it.
 
 POLY_FAMILIES = ("poly-ridge", "poly-logistic")
 
@@ -127,6 +126,8 @@ def check_takes_weights(plan: ModelPlan, where: str) -> None:
 
 def _final_estimator(plan: ModelPlan) -> Any:
     """The last pipeline step with default parameters (nothing from the config)."""
+    from sklearn.linear_model import LogisticRegression, Ridge, RidgeClassifier
+    from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
     if plan.estimator_cls is not None:
         return plan.estimator_cls()
     if plan.family == "poly-logistic":
@@ -138,6 +139,9 @@ def _final_estimator(plan: ModelPlan) -> Any:
 
 def _check_parameters(config: Config, plan: ModelPlan) -> None:
     """Every parameter the config sets must exist on the model; the task must fit it."""
+    if _plain_poly_ridge(plan):
+        return
+    from sklearn.base import is_classifier, is_regressor
     name = config.source.name
     final = _final_estimator(plan)
     if plan.estimator_cls is not None:
@@ -168,6 +172,26 @@ def _check_parameters(config: Config, plan: ModelPlan) -> None:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"{name}: [model] values are not accepted by {config.model_name}: "
                          f"{first}") from None
+
+
+def _plain_poly_ridge(plan: ModelPlan) -> bool:
+    """poly-ridge with nothing set but whole degrees from 1 and positive finite alphas.
+
+    Its parameters are the family's own, and these values are ones its
+    estimators accept, so there is nothing left for scikit-learn to check.
+    """
+    def whole(value: Any) -> bool:
+        return isinstance(value, int) and not isinstance(value, bool) and value >= 1
+
+    def positive(value: Any) -> bool:
+        return (isinstance(value, (int, float)) and not isinstance(value, bool)
+                and math.isfinite(value) and value > 0)
+
+    return (plan.family == "poly-ridge" and plan.estimator_cls is None and plan.prototype is None
+            and not plan.params and plan.feature_sets is None and plan.capacity_param == "degree"
+            and plan.regularization_param in (None, "alpha")
+            and all(whole(d) for d in plan.capacity_values)
+            and all(positive(a) for a in plan.regularization_values))
 
 
 #: Copies of the widest feature table one poly fit holds at once (the expanded
@@ -243,6 +267,10 @@ def make_encoder(plan: ModelPlan, capacity_index: int) -> ColumnTransformer | No
     """
     if not needs_encoder(plan):
         return None
+    from sklearn.compose import ColumnTransformer
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import Pipeline
+    from sklearn.preprocessing import OneHotEncoder
     columns = plan.columns(capacity_index)
     numeric = [c for c in plan.numeric if c in columns]
     categorical = [c for c in plan.categorical if c in columns]
@@ -260,6 +288,9 @@ def make_encoder(plan: ModelPlan, capacity_index: int) -> ColumnTransformer | No
 
 def _from_prototype(plan: ModelPlan, capacity_index: int, params: dict) -> Any:
     """The user's estimator, cloned and set for one setting; feature sets pick its columns first."""
+    from sklearn.base import clone
+    from sklearn.compose import ColumnTransformer
+    from sklearn.pipeline import Pipeline
     model = clone(plan.prototype)
     if model.get_params(deep=False).get("random_state", 0) is None:
         params.setdefault("random_state", plan.seed)      # the run's seed, as for a config
@@ -274,6 +305,11 @@ def _from_prototype(plan: ModelPlan, capacity_index: int, params: dict) -> Any:
 def build_model(plan: ModelPlan, capacity_index: int, regularization_index: int,
                 *, check: bool = True) -> Pipeline:
     """The plain scikit-learn pipeline for one grid setting."""
+    from sklearn.base import clone
+    from sklearn.linear_model import LogisticRegression, Ridge, RidgeClassifier
+    from sklearn.pipeline import Pipeline
+    from sklearn.preprocessing import PolynomialFeatures, StandardScaler
+    from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
     params = plan.setting_params(capacity_index, regularization_index)
     if plan.prototype is not None:
         return _from_prototype(plan, capacity_index, params)

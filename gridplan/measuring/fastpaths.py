@@ -145,8 +145,6 @@ def poly_ridge_grid(X_train: np.ndarray, y_train: np.ndarray, X_val: np.ndarray,
     `features` may pass in the rows' polynomial features at max(degrees) or
     higher (see `polynomial_features`), when they have been built once for many calls.
     """
-    from sklearn import config_context
-
     X_train, X_val = _as_design(X_train, "X_train"), _as_design(X_val, "X_val")
     y_train, y_val = np.asarray(y_train).ravel(), np.asarray(y_val).ravel()
     _check_rows(X_train, y_train, X_val, y_val)
@@ -167,30 +165,62 @@ def poly_ridge_grid(X_train: np.ndarray, y_train: np.ndarray, X_val: np.ndarray,
              for P, X in zip(features, (X_train, X_val))):
         raise ValueError(f"features must hold the rows' first {width} polynomial columns")
 
-    # The inputs are checked above; the library's repeated checks (hundreds per
-    # call) are skipped, which changes no arithmetic.
-    with config_context(assume_finite=True, skip_parameter_validation=True):
-        return _poly_ridge_grid(features[0][:, :width], y_train, features[1][:, :width], y_val,
-                                X_train.shape[1], degrees, alphas, task, metric)
+    return _poly_ridge_grid(features[0][:, :width], y_train, features[1][:, :width], y_val,
+                            X_train.shape[1], degrees, alphas, task, metric)
 
 
 def polynomial_features(X: np.ndarray, degree: int) -> np.ndarray:
-    """``PolynomialFeatures(degree, include_bias=False)`` of X.
+    """``PolynomialFeatures(degree, include_bias=False)`` of X, bit for bit, in numpy alone.
 
-    Each output row depends on its own input row alone, so the features of a
-    subset of rows are those rows of the features of all rows, bit for bit; and
-    the degree-d columns are the first columns of any higher degree's.
+    Columns come in that transformer's order (degree by degree, monomials in
+    lexicographic order of their inputs), and each degree-d column is the same
+    product as there: a degree-(d-1) column times one input. Each output row
+    depends on its own input row alone, so the features of a subset of rows are
+    those rows of the features of all rows; and the degree-d columns are the
+    first columns of any higher degree's.
     """
-    from sklearn.preprocessing import PolynomialFeatures
+    X = np.asarray(X, dtype=float)
+    n_rows, n_inputs = X.shape
+    out = np.empty((n_rows, n_poly_columns(n_inputs, degree)))
+    out[:, :n_inputs] = X
+    # starts[j]: first column of the previous degree's block whose monomials use
+    # no input before j; multiplying those columns by input j keeps the order.
+    starts, end = list(range(n_inputs)), n_inputs
+    for _ in range(2, degree + 1):
+        new_starts, column = [], end
+        for j in range(n_inputs):
+            new_starts.append(column)
+            width = end - starts[j]
+            np.multiply(out[:, starts[j]:end], X[:, j:j + 1], out=out[:, column:column + width])
+            column += width
+        starts, end = new_starts, column
+    return out
 
-    return PolynomialFeatures(degree, include_bias=False).fit_transform(X)
+
+def standard_scaling(P: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(mean, scale) of each column as ``StandardScaler().fit(P)`` sets them, bit for bit.
+
+    The corrected two-pass variance (Chan, Golub & LeVeque 1983): the sum of
+    squared deviations from the mean, less the square of their sum over n.
+    A column whose variance is within rounding of zero gets scale 1.
+    """
+    n = P.shape[0]
+    total = np.sum(P, axis=0)
+    mean = total / n
+    deviations = P - mean
+    correction = np.sum(deviations, axis=0)
+    deviations **= 2
+    variance = (np.sum(deviations, axis=0) - correction ** 2 / n) / n
+    eps = np.finfo(np.float64).eps
+    constant = variance <= n * eps * variance + (n * mean * eps) ** 2
+    scale = np.sqrt(variance)
+    scale[constant] = 1.0
+    return mean, scale
 
 
 def _poly_ridge_grid(P_train, y_train, P_val, y_val, n_inputs, degrees, alphas, task,
                      metric) -> list[list[FastCell]]:
     """poly_ridge_grid on checked inputs and their polynomial features: one scaling and QR for all degrees."""
-    from sklearn.preprocessing import StandardScaler
-
     targets, decide = _ridge_targets(y_train, task)
     n_train = P_train.shape[0]
     # Scaling and centring work column by column, so doing them on training
@@ -199,9 +229,9 @@ def _poly_ridge_grid(P_train, y_train, P_val, y_val, n_inputs, degrees, alphas, 
     # design is the first columns of S, and the triangular factor of its
     # centred version is the leading block of R (see _design_factor).
     P = np.vstack([P_train, P_val])
-    scaler = StandardScaler().fit(P[:n_train])
-    S = P - scaler.mean_            # StandardScaler.transform's two steps, without its checks
-    S /= scaler.scale_
+    mean, scale = standard_scaling(P[:n_train])
+    S = P - mean                    # StandardScaler.transform's two steps, without its checks
+    S /= scale
     S_train, S_val = S[:n_train], S[n_train:]
     x_mean, y_mean = S_train.mean(axis=0), targets.mean(axis=0)
     C_train, C_val = S_train - x_mean, S_val - x_mean
@@ -323,6 +353,7 @@ def _fallback_cells(data: _RidgeData, width: int, alphas: np.ndarray, task: str,
     solve is the library's own) without the library's per-call checks, which
     cost more than the small solves they guard.
     """
+    from sklearn import config_context
     from sklearn.linear_model import ridge_regression
 
     S_train = np.ascontiguousarray(data.S_train[:, :width])
@@ -338,7 +369,10 @@ def _fallback_cells(data: _RidgeData, width: int, alphas: np.ndarray, task: str,
     X_centred, y_centred = S_train - x_offset, targets - y_offset
     cells = []
     for alpha, why in zip(alphas, reasons):
-        coef = ridge_regression(X_centred, y_centred, alpha, sample_weight=weights, check_input=False)
+        # the inputs are checked; the library's repeated checks change no arithmetic
+        with config_context(assume_finite=True, skip_parameter_validation=True):
+            coef = ridge_regression(X_centred, y_centred, alpha, sample_weight=weights,
+                                    check_input=False)
         intercept = y_offset - x_offset @ coef.T       # coef is 1-d for a single column
         fitted = [(S @ coef.T + intercept).reshape(S.shape[0], -1) for S in (S_train, S_val)]
         train_error, validation_error = (

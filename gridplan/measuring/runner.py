@@ -139,6 +139,9 @@ def _one_blas_thread():
     if _LIMITED_BY_CALLER:
         return nullcontext()
     if _CONTROLLER is None:
+        # The controller sees only the BLAS libraries loaded when it is made:
+        # SciPy brings its own (the ridge path's QR), so load it first.
+        import scipy.linalg  # noqa: F401
         _CONTROLLER = ThreadpoolController()
     return _CONTROLLER.limit(limits=1)
 

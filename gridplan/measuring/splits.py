@@ -11,7 +11,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from sklearn.model_selection import RepeatedKFold, RepeatedStratifiedKFold
 
 from gridplan.common.errors import InputError
 
@@ -40,16 +39,44 @@ def make_folds(y: np.ndarray, *, classification: bool, folds: int, repeats: int,
     if groups is not None:
         return grouped_folds(y, groups, classification=classification, folds=folds,
                              repeats=repeats, seed=seed)
-    splitter_cls = RepeatedStratifiedKFold if classification else RepeatedKFold
-    splitter = splitter_cls(n_splits=folds, n_repeats=repeats, random_state=seed)
+    if classification:
+        from sklearn.model_selection import RepeatedStratifiedKFold
+        splitter = RepeatedStratifiedKFold(n_splits=folds, n_repeats=repeats, random_state=seed)
+        splits = splitter.split(np.zeros(len(y)), y)
+    else:
+        splits = repeated_kfold(len(y), folds=folds, repeats=repeats, seed=seed)
     out = []
-    for k, (train, test) in enumerate(splitter.split(np.zeros(len(y)), y)):
+    for k, (train, test) in enumerate(splits):
         repeat, fold = divmod(k, folds)
         rng = np.random.default_rng([seed, repeat, fold])
         out.append(Fold(repeat=repeat, fold=fold, train=train[nested_order(y[train], rng,
                                                                            classification)],
                         test=test))
     return out
+
+
+def repeated_kfold(n_rows: int, *, folds: int, repeats: int, seed: int):
+    """(training rows, held-out rows) as ``RepeatedKFold(folds, repeats, random_state=seed)`` gives them.
+
+    Each repeat shuffles the row numbers with one shared ``RandomState(seed)``
+    stream and cuts them into `folds` consecutive blocks, the first
+    n_rows % folds of them one row longer; both index arrays come sorted. In
+    numpy alone, so a run that needs no scikit-learn model does not import it.
+    """
+    if not 2 <= folds <= n_rows:
+        raise InputError(f"{folds} folds cannot be cut from {n_rows:,} rows; use 2 to {n_rows:,}.")
+    rng = np.random.RandomState(seed)
+    rows = np.arange(n_rows)
+    sizes = np.full(folds, n_rows // folds)
+    sizes[:n_rows % folds] += 1
+    for _ in range(repeats):
+        order = rows.copy()
+        rng.shuffle(order)
+        stops = np.cumsum(sizes)
+        for stop, size in zip(stops, sizes):
+            held_out = np.zeros(n_rows, dtype=bool)
+            held_out[order[stop - size:stop]] = True
+            yield rows[~held_out], rows[held_out]
 
 
 def grouped_folds(y: np.ndarray, groups: np.ndarray, *, classification: bool, folds: int,
