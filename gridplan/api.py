@@ -10,7 +10,7 @@ from __future__ import annotations
 import os
 from contextlib import contextmanager
 from pathlib import Path
-from typing import TYPE_CHECKING, Iterator
+from typing import TYPE_CHECKING, Iterator, Sequence
 
 from gridplan.common.checks import DEFAULT_BOOT, check_path_text, check_target
 from gridplan.common.errors import GridplanError
@@ -21,7 +21,7 @@ from gridplan.measuring.runs import (
     open_run,
     refuse_run_file,
 )
-from gridplan.measuring.store import CONFIG_COPY, STORE_NAME, Store
+from gridplan.measuring.store import CONFIG_COPY, STORE_NAME, FoldRow, Store
 
 if TYPE_CHECKING:   # the grid side (scikit-learn) is imported only where a grid is resolved
     from gridplan.measuring.spec import GridSpec, RunSpec
@@ -131,8 +131,13 @@ def _values(axis) -> list:
 
 def run(config: Config | str | Path, *, out: str | Path | None = None, jobs: int | None = None,
         scheduler: str | None = None, allow_any_estimator: bool = False,
-        progress=None, spec: RunSpec | GridSpec | None = None) -> Path:
-    """Evaluate a config's grid (every model table), resuming an earlier partial run in the same folder."""
+        progress=None, spec: RunSpec | GridSpec | None = None,
+        ready: Sequence[Sequence[FoldRow]] = ()) -> Path:
+    """Evaluate a config's grid (every model table), resuming an earlier partial run in the same folder.
+
+    `ready` may hand over, per model table, rows fitted already on this very
+    spec (the CLI's estimate probe); they are stored instead of fitted again.
+    """
     from gridplan.measuring.runner import run_grid
     from gridplan.measuring.spec import resolve_run
     if not isinstance(config, Config):
@@ -152,7 +157,8 @@ def run(config: Config | str | Path, *, out: str | Path | None = None, jobs: int
                     from gridplan.measuring.cluster import run_on_cluster
                     run_on_cluster(model, store, address, progress=step)
                 else:
-                    run_grid(model, store, jobs=effective_jobs(config, jobs), progress=step)
+                    run_grid(model, store, jobs=effective_jobs(config, jobs), progress=step,
+                             ready=ready[index] if index < len(ready) else ())
             finally:
                 store.close()
             done_before += model.n_fits

@@ -130,8 +130,8 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
     run_dir = out or api.default_run_dir(spec.config)
     if not quiet:
         typer.echo(_describe(spec, run_dir))
-    seconds, line = _estimate_line(spec, api.effective_jobs(spec.config, jobs),
-                                   _finished_keys(run_dir, len(spec.models)))
+    seconds, line, probed = _estimate_line(spec, api.effective_jobs(spec.config, jobs),
+                                           _finished_keys(run_dir, len(spec.models)))
     if not quiet:
         typer.echo(line)
     if seconds > CONFIRM_ABOVE_SECONDS and not yes and _on_terminal():
@@ -139,7 +139,8 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
             _fail("not started.", code=1)
     with _progress_bar(spec, quiet) as progress:
         api.run(spec.config, out=run_dir, jobs=jobs, scheduler=scheduler,
-                allow_any_estimator=allow_any_estimator, progress=progress, spec=spec)
+                allow_any_estimator=allow_any_estimator, progress=progress, spec=spec,
+                ready=() if scheduler else probed)
     cells = api.open_run(run_dir).all_cells()
     failed = int((cells["status"] != "ok").sum())
     typer.echo(f"done: {len(cells)} fits stored in {run_dir}"
@@ -162,17 +163,21 @@ def _duration(seconds: float) -> str:
     return f"{seconds / 3600:.1f} h"
 
 
-def _estimate_line(spec, jobs: int, done: list[set] | None = None) -> tuple[float, str]:
-    """Time one unfinished task at the largest size per model and scale it to the rest."""
+def _estimate_line(spec, jobs: int, done: list[set] | None = None) -> tuple[float, str, list]:
+    """Time one unfinished task at the largest size per model and scale it to the rest.
+
+    Returns (seconds, the line to print, per model the probe's rows for the run to keep).
+    """
     from gridplan.measuring.runner import estimate_seconds
-    seconds, probe = 0.0, 0.0
+    seconds, probe, probed = 0.0, 0.0, []
     for index, model in enumerate(spec.models):
-        more, taken = estimate_seconds(model, jobs, done[index] if done else None)
+        more, taken, rows = estimate_seconds(model, jobs, done[index] if done else None)
         seconds, probe = seconds + more, max(probe, taken)
+        probed.append(rows)
     if probe == 0.0:
-        return 0.0, f"{'estimate'.ljust(14)}  nothing left to run: every fit is stored"
+        return 0.0, f"{'estimate'.ljust(14)}  nothing left to run: every fit is stored", probed
     return seconds, (f"{'estimate'.ljust(14)}  about {_duration(seconds)} with {jobs} worker"
-                     f"{'s' if jobs > 1 else ''} (one task at the largest size took {probe:.2f} s)")
+                     f"{'s' if jobs > 1 else ''} (one task at the largest size took {probe:.2f} s)"), probed
 
 
 def _finished_keys(run_dir: Path, models: int = 1) -> list[set]:

@@ -291,3 +291,28 @@ def test_shared_polynomial_features_have_a_size_limit(tmp_path, monkeypatch):
     assert runner.with_shared_features(tasks, work).poly_features.shape == (300, 83)
     monkeypatch.setattr(runner, "SHARED_FEATURES_MAX_BYTES", 300 * 83 * 8 - 1)
     assert runner.with_shared_features(tasks, work).poly_features is None
+
+
+def test_the_command_keeps_its_estimate_probe_instead_of_fitting_it_twice(tmp_path, monkeypatch):
+    # The estimate line times one task; `run` stores that task's rows and fits every other task once.
+    from typer.testing import CliRunner
+
+    from gridplan.cli import app
+    from gridplan.measuring import runner
+    config = _resume_config(tmp_path)
+    calls = []
+    real = runner.run_task
+
+    def counted(task, work):
+        calls.append(task)
+        return real(task, work)
+
+    monkeypatch.setattr(runner, "run_task", counted)
+    result = CliRunner().invoke(app, ["run", str(config.source), "--out", str(tmp_path / "cli"),
+                                      "--jobs", "1", "--quiet"])
+    assert result.exit_code == 0, result.output
+    spec = resolve(config)
+    assert len(calls) == len(set(calls)) == len(runner.build_tasks(spec, set()))
+    via_cli = without_times(api.open_run(tmp_path / "cli").cells())
+    api.run(config, out=tmp_path / "api", jobs=1)
+    pd.testing.assert_frame_equal(via_cli, without_times(api.open_run(tmp_path / "api").cells()))

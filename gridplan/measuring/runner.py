@@ -418,13 +418,18 @@ def execute(tasks: list[Task], work: Workload, *, jobs: int = 1, backend: str | 
 
 def run_grid(spec: GridSpec, store: Store, *, jobs: int = 1, backend: str | None = None,
              backend_options: dict | None = None, chunk: int = 1,
-             progress: ProgressCallback | None = None) -> int:
+             progress: ProgressCallback | None = None, ready: list[FoldRow] = ()) -> int:
     """Run every unfinished task, writing rows to the store as they arrive.
 
-    Returns the number of fits written. On interruption every finished row has
-    already been committed.
+    `ready` holds rows fitted already for this grid (estimate_seconds' probe);
+    they are stored first and not fitted again. Returns the number of fits
+    written. On interruption every finished row has already been committed.
     """
     done = store.finished_keys()
+    keep = [r for r in ready if (r.capacity_index, r.regularization_index, r.size_index,
+                                 r.repeat, r.fold) not in done]
+    written = store.write_rows(keep)
+    done = store.finished_keys() if keep else done
     tasks = build_tasks(spec, done)
     total = spec.n_fits
     finished = len(done)
@@ -433,7 +438,6 @@ def run_grid(spec: GridSpec, store: Store, *, jobs: int = 1, backend: str | None
     work = workload_of(spec)
     buffer: list[FoldRow] = []
     last_flush = time.monotonic()
-    written = 0
     try:
         for rows in execute(tasks, work, jobs=jobs, backend=backend,
                             backend_options=backend_options, chunk=chunk):
@@ -452,21 +456,23 @@ def run_grid(spec: GridSpec, store: Store, *, jobs: int = 1, backend: str | None
 
 
 def estimate_seconds(spec: GridSpec, jobs: int,
-                     done: set[tuple[int, int, int, int, int]] | None = None) -> tuple[float, float]:
+                     done: set[tuple[int, int, int, int, int]] | None = None
+                     ) -> tuple[float, float, list[FoldRow]]:
     """Rough wall time of the unfinished grid from one timed task at the largest size.
 
-    Returns (estimate, probe seconds); (0, 0) when nothing is left to run. Work
-    is taken as proportional to the training size, which holds roughly for the
-    built-in families.
+    Returns (estimate, probe seconds, the probe's rows), so that a run can keep
+    the probe's fits instead of fitting them again; (0, 0, []) when nothing is
+    left to run. Work is taken as proportional to the training size, which
+    holds roughly for the built-in families.
     """
     tasks = build_tasks(spec, done or set())
     if not tasks:
-        return 0.0, 0.0
+        return 0.0, 0.0, []
     largest = max(t.size_index for t in tasks)
     probe = max((t for t in tasks if t.size_index == largest),
                 key=lambda t: (max(t.capacity_indices), -min(t.regularization_indices)))
     started = time.perf_counter()
-    run_task(probe, workload_of(spec))
+    rows = run_task(probe, workload_of(spec))
     probe_seconds = time.perf_counter() - started
     scale = float(np.mean([spec.sizes[t.size_index] for t in tasks])) / spec.sizes[largest]
-    return probe_seconds * len(tasks) * scale / max(1, jobs), probe_seconds
+    return probe_seconds * len(tasks) * scale / max(1, jobs), probe_seconds, rows
