@@ -113,6 +113,10 @@ def check(config: Path = typer.Argument(..., help="TOML config file."),
     typer.echo(_estimate_line(spec, api.effective_jobs(spec.config, None))[1])
 
 
+#: A run estimated to take longer than this asks before it starts (on a terminal).
+CONFIRM_ABOVE_SECONDS = 30 * 60
+
+
 @app.command()
 @friendly
 def run(config: Path = typer.Argument(..., help="TOML config file."),
@@ -146,8 +150,6 @@ def run(config: Path = typer.Argument(..., help="TOML config file."),
     typer.echo(f"done: {len(cells)} fits stored in {run_dir}"
                + (f"; {failed} failed (see `gridplan export`)" if failed else ""))
 
-
-CONFIRM_ABOVE_SECONDS = 30 * 60
 
 
 def _on_terminal() -> bool:

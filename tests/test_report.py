@@ -408,3 +408,10 @@ def test_costs_have_decimals_only_when_they_are_not_whole():
     assert money(14440) == "14,440" and money(250.0) == "250"
     assert money(2.5) == "2.50" and money(1234.567) == "1,234.57"
     assert money(None) == "-" and money(None, missing="–") == "–"
+
+
+def test_every_verdict_has_words_in_the_report():
+    # The report names each verdict the diagnosis can give, and no other.
+    from gridplan.deciding.diagnosis import VERDICTS
+    from gridplan.showing.report import VERDICT_WORDS
+    assert set(VERDICT_WORDS) == set(VERDICTS)

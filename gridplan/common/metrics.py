@@ -58,11 +58,6 @@ def scorer_error(metric: str, estimator, X, y, sample_weight=None) -> float:
     return 1.0 - score
 
 
-def metrics_for_task(task: str) -> tuple[str, ...]:
-    """The metric names that make sense for a task."""
-    return REGRESSION_METRICS if task == "regression" else CLASSIFICATION_METRICS
-
-
 def needs_proba(metric: str) -> bool:
     """True when the metric scores class probabilities rather than labels."""
     return metric == "log_loss"

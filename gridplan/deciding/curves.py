@@ -42,9 +42,6 @@ MISFIT_LEVEL = 0.9
 
 #: Fewest sizes for which the family is chosen by hold-out; below it pow3 is used.
 MIN_SIZES_FOR_CHOICE = 5
-#: Bootstrap resamples per curve, the same for every command, so that `advise`,
-#: `report` and `demo` on one run give the same bands and plans.
-
 #: Largest training size the samples-needed search will consider.
 DEFAULT_MAX_SIZE = 1e12
 

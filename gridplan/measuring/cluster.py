@@ -54,6 +54,10 @@ def _report_failure(done: Future, callback: Callable) -> None:
         callback(error)   # joblib raises an exception it gets as a result
 
 
+#: How often a run resends its data after a dying worker took the only copy.
+LOST_DATA_RETRIES = 2
+
+
 def run_on_cluster(spec: GridSpec, store: Store, address: str, *,
                    progress: ProgressCallback | None = None, chunk: int | None = None,
                    connect_timeout: float | None = None) -> int:
@@ -71,29 +75,25 @@ def run_on_cluster(spec: GridSpec, store: Store, address: str, *,
         if chunk is None:
             pending = len(build_tasks(spec, store.finished_keys()))
             chunk = chunk_size(pending, threads)
-        written = 0
-        for attempt in range(1 + LOST_DATA_RETRIES):
+        stored_before, retries = len(store.finished_keys()), 0
+        while True:
             try:
-                return written + run_grid(spec, store, jobs=-1, backend=BACKEND_NAME,
-                                          backend_options={"client": client}, chunk=chunk,
-                                          progress=progress)
+                run_grid(spec, store, jobs=-1, backend=BACKEND_NAME,
+                         backend_options={"client": client}, chunk=chunk, progress=progress)
+                return len(store.finished_keys()) - stored_before   # retried attempts count too
             except Exception as exc:
                 problem = _cluster_problem(exc, address)
                 if problem is None:
                     raise
-                if _lost_scattered_data(exc, client) and attempt < LOST_DATA_RETRIES:
+                if _lost_scattered_data(exc, client) and retries < LOST_DATA_RETRIES:
+                    retries += 1
                     continue   # a dead worker took the data with it: send it again, go on
                 remaining = spec.n_fits - len(store.finished_keys())
                 raise ClusterError(
                     f"{problem}; {remaining} of {spec.n_fits} fits are still to do and every "
                     f"finished one is saved, so rerun the same command to compute the rest.") from None
-        return written
     finally:
         client.close()
-
-
-#: How often a run resends its data after a dying worker took the only copy.
-LOST_DATA_RETRIES = 2
 
 
 def _lost_scattered_data(exc: Exception, client: "Client") -> bool:

@@ -205,10 +205,6 @@ class Store:
         frame["model_index"] = self.model
         return frame[EXPORT_COLUMNS]
 
-    def model_count(self) -> int:
-        """How many model tables the run holds (1 for runs of a single [model])."""
-        return max(len(self.meta().get(MODELS_KEY) or []), 1)
-
     def integrity_ok(self) -> bool:
         """SQLite's own integrity check."""
         return self.connection.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
