@@ -374,3 +374,17 @@ def test_joint_surface_recovers_its_parameters_and_shrugs_off_an_outlier():
     assert robust.params == pytest.approx(truth.params, rel=0.02)
     with pytest.raises(GridplanError, match="joint surface"):
         fit_joint_surface([1, 1, 1], [10, 20, 30], [0.3, 0.2, 0.1])
+
+
+@pytest.mark.parametrize("a,b,target", [(0.1, 2.0, 0.15), (0.0, 7.5, 1e-6), (0.3, 0.02, 0.31),
+                                        (0.05, 1e4, 0.0500001)])
+def test_samples_search_finds_the_first_whole_size(a, b, target):
+    # Inverse power law e(m) = a + b / m (Cortes et al. 1994): the first whole size at or
+    # below the target is ceil(b / (target - a)); a=.1, b=2, e*=.15 gives 40.
+    from gridplan.deciding.curves import _edge_reach
+    edge = lambda m: a + b / np.asarray(m, dtype=float)   # noqa: E731
+    grid = np.geomspace(1.0, 1e12, 721)
+    reached = target * (1 + 1e-9)                # the search's own tolerance
+    found = _edge_reach(edge, grid, edge(grid), target)
+    assert found == pytest.approx(math.ceil(b / (reached - a)), rel=1e-9, abs=1)   # rounding near 1e11
+    assert edge(found) <= reached and (found == 1 or edge(found - 1) > reached)

@@ -50,6 +50,8 @@ DEFAULT_MAX_SIZE = 1e12
 LEVEL_DOUBLINGS_CAP = 2.0
 #: Points of the log grid on which the upper band edge is made monotone beyond the data.
 MONOTONE_GRID = 256
+#: Whole sizes tried at once in each round of the samples-needed search (see _edge_reach).
+SEARCH_POINTS = 64
 
 
 
@@ -382,20 +384,34 @@ def _point_reach(fam: Family, theta, scale, target, max_size) -> int | None:
 
 
 def _edge_reach(edge: Callable, grid: np.ndarray, values: np.ndarray, target: float) -> int | None:
-    """Smallest m on [1, grid max] with edge(m) <= target: grid scan, then brentq in log m."""
-    from scipy.optimize import brentq
+    """Smallest whole m on [1, grid max] with edge(m) <= target: a grid scan, then a search by rows.
 
-    hits = np.flatnonzero(values <= target * (1 + 1e-9))
+    Sizes are whole rows, so the crossing between the two grid points that
+    bracket it is found among integers: each round evaluates the edge at up to
+    SEARCH_POINTS integers of the bracket at once and keeps the piece where it
+    crosses, until the bracket is one row wide.
+    """
+    reached = target * (1 + 1e-9)
+    hits = np.flatnonzero(values <= reached)
     if hits.size == 0:
         return None
     first = hits[0]
     if first == 0:
         return 1
-    root = brentq(lambda log_m: float(edge(math.exp(log_m))) - target,
-                  math.log(grid[first - 1]), math.log(grid[first]), xtol=1e-10)
-    m = math.exp(root)
-    size = max(1, int(math.ceil(m - 1e-9 * m)))
-    return size if float(edge(float(size))) <= target * (1 + 1e-9) else size + 1
+    # edge(low) > target and edge(high) <= target, for an edge falling with m
+    low, high = int(math.floor(grid[first - 1])), int(math.ceil(grid[first]))
+    while high - low > 1:
+        inside = np.unique(np.linspace(low, high, SEARCH_POINTS + 2)[1:-1].astype(np.int64))
+        inside = inside[(inside > low) & (inside < high)]
+        if inside.size == 0:
+            break
+        below = np.flatnonzero(np.asarray(edge(inside.astype(float))) <= reached)
+        if below.size == 0:
+            low = int(inside[-1])
+        else:
+            high = int(inside[below[0]])
+            low = int(inside[below[0] - 1]) if below[0] > 0 else low
+    return max(1, high)
 
 
 # --- fitting a setting ----------------------------------------------------------
