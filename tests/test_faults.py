@@ -266,3 +266,17 @@ def test_report_and_figures_never_replace_the_run_folders_own_files(tmp_path):
         assert "is the run folder's own" in result.output and "Traceback" not in result.output
     assert (run_dir / "store.sqlite").read_bytes() == before
     assert len(api.open_run(run_dir).cells()) == 4 * 3
+
+
+def test_a_damaged_config_copy_leaves_the_run_readable(tmp_path):
+    # The copy of the config is a convenience: bytes that are not UTF-8 there must not
+    # stop curves or advice; the store alone describes the run.
+    from typer.testing import CliRunner
+
+    from gridplan.cli import app
+    run_dir = _small_run(tmp_path)
+    (run_dir / "config.toml").write_bytes(b"\xff\xfe not text \x81")
+    assert api.open_run(run_dir).config is None
+    result = CliRunner().invoke(app, ["curves", str(run_dir)])
+    assert result.exit_code == 0 and "Traceback" not in result.output
+    assert "Learning curves" in result.output

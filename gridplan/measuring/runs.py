@@ -91,8 +91,8 @@ def open_run(run_dir: str | Path | Run, model: str | int | None = None) -> Run:
         try:
             text = copy.read_text(encoding="utf-8")
             config = parse_config(tomllib.loads(text), copy.resolve(), text)
-        except (GridplanError, tomllib.TOMLDecodeError):
-            config = None
+        except (GridplanError, tomllib.TOMLDecodeError, UnicodeDecodeError, OSError):
+            config = None      # the store alone still describes the run
     if config is not None and len(config.models) > 1:
         config = config.for_model(index) if index < len(config.models) else None
     return Run(run_dir=run_dir, meta=meta, axes=axes, config=config, model=index)
