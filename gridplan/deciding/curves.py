@@ -1,5 +1,13 @@
 """One setting's learning curve: level and spread per size, family choice by hold-out,
-bootstrap bands, extrapolation, samples needed (families in gridplan.deciding.shapes)."""
+bootstrap bands, extrapolation, samples needed (the families are in gridplan.deciding.shapes).
+
+A setting's learning curve is its mean validation error against training-set
+size.  Each parametric family (see shapes) is fitted by weighted non-linear least
+squares (weights 1 / standard error of the mean at each size, floored) in the
+scaled size x = m / (largest measured size), with bounds that keep every curve
+non-increasing in m and its asymptote (the noise-floor estimate) non-negative.
+Uncertainty comes from a bootstrap over whole (repeat, fold) units.
+"""
 
 from __future__ import annotations
 

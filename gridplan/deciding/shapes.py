@@ -1,12 +1,5 @@
 """Learning-curve families: formulas, Jacobians, inverses, starting points, one family's fit.
 
-A setting's learning curve is its mean validation error against training-set
-size.  Each parametric family below is fitted by weighted non-linear least
-squares (weights 1 / standard error of the mean at each size, floored) in the
-scaled size x = m / (largest measured size), with bounds that keep every curve
-non-increasing in m and its asymptote (the noise-floor estimate) non-negative.
-Uncertainty comes from a bootstrap over whole (repeat, fold) units.
-
 Families (error e against training size m; names as in the learning-curve
 literature, e.g. Viering & Loog 2023 and Mohr et al. 2022, written here for
 an error that falls with m):
