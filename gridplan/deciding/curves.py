@@ -607,9 +607,6 @@ def fit_problems(problems: list[Problem], families: tuple[str, ...],
     return results
 
 
-#: Most bootstrap resamples per curve; past it the stacked fits outgrow memory.
-
-
 def check_families(families: Iterable[str]) -> tuple[str, ...]:
     families = tuple(families)
     for name in families:
