@@ -15,9 +15,12 @@ from typing import TYPE_CHECKING, Iterator, Sequence
 from gridplan.common.checks import DEFAULT_BOOT, check_path_text, check_target
 from gridplan.common.errors import GridplanError
 from gridplan.measuring.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
-from gridplan.measuring.runs import (
+from gridplan.measuring.runs import (  # noqa: F401 (public here as before)
     EXPORTS_KEY,
     LOCK_NAME,
+    RUN_FILES,
+    Run,
+    model_index,
     open_run,
     refuse_run_file,
 )

@@ -63,3 +63,12 @@ def test_an_upward_import_inside_a_function_is_seen(tmp_path):
     found = _imported(path)
     assert found == {"gridplan.showing.report", "gridplan.api"}
     assert [ORDER.index(_layer(m)) > ORDER.index("deciding") for m in sorted(found)] == [True, True]
+
+
+def test_the_api_module_keeps_its_public_names():
+    # Moving modules into sides must not take names away from gridplan.api.
+    from gridplan import api
+    for name in ("run", "check", "open_run", "export_cells", "fit_curves", "curves_report",
+                 "default_run_dir", "effective_jobs", "Run", "RUN_FILES", "model_index",
+                 "load_config", "Config", "GridplanError"):
+        assert hasattr(api, name), name
