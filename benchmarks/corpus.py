@@ -196,6 +196,28 @@ def backtest_member(member: Member, folder: Path, jobs: int) -> dict:
     return result
 
 
+def measurement_noise(run_dir: Path, full_size: int) -> float:
+    """Median over settings of the measured full-size error's own relative standard error.
+
+    The spread over (repeat, fold) units with the corrected resampled-t variance
+    factor 1/J + n_test/n_train (Nadeau & Bengio 2003, Machine Learning 52): the
+    part of a forecast's miss that is the measurement's, not the forecast's.
+    """
+    from gridplan.api import open_run
+    cells = open_run(run_dir).cells()
+    full = cells[(cells.status == "ok") & (cells.train_size == full_size)]
+    noise = []
+    for _, group in full.groupby(["capacity_index", "regularization_index"]):
+        errors = group.validation_error.to_numpy()
+        mean = float(errors.mean())
+        if errors.size < 2 or mean <= 0:
+            continue
+        folds = int(group.fold.max()) + 1
+        factor = 1.0 / errors.size + 1.0 / (folds - 1)      # n_test / n_train = 1 / (K - 1)
+        noise.append(float(np.sqrt(factor * errors.var(ddof=1))) / mean)
+    return float(np.median(noise)) if noise else float("nan")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--only", nargs="*", help="member names to run")
@@ -213,7 +235,8 @@ def main() -> None:
             rel = [r["rel_error"] for r in rows if r["rel_error"] is not None]
             lean = [r["predicted"] < r["measured"] for r in rows]
             calibration = result.get("calibration") or {}
-            table.append({"member": member.name, "source": member.source,
+            noise = measurement_noise(Path(result["run_dir"]), int(result["full_size"]))
+            table.append({"member": member.name, "source": member.source, "noise": noise,
                           "settings": len(rows), "median_rel_error": float(np.median(rel)),
                           "coverage": float(np.mean([r["inside_band"] for r in rows])),
                           "too_low": float(np.mean(lean)),
@@ -222,7 +245,8 @@ def main() -> None:
                           "seconds": time.perf_counter() - started})
             t = table[-1]
             print(f"{t['member']:<16} {t['source']:<28} {t['settings']:>3} settings  "
-                  f"median |rel err| {t['median_rel_error']:6.1%}  in 90% band {t['coverage']:5.0%}  "
+                  f"median |rel err| {t['median_rel_error']:6.1%} (measurement noise {t['noise']:5.1%})  "
+                  f"in 90% band {t['coverage']:5.0%}  "
                   f"too low {t['too_low']:4.0%}  lean {t['lean']:.2f} drop spread "
                   f"{t['spread']:.2f} level spread {t['level_spread']:.3f}  "
                   f"({t['seconds']:.0f} s)", flush=True)
