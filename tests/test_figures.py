@@ -1,4 +1,4 @@
-"""Views: the data behind each picture (cells, labels, line data), not its pixels."""
+"""Figures: the data behind each picture (cells, labels, line data), not its pixels."""
 
 from __future__ import annotations
 

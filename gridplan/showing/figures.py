@@ -1,7 +1,7 @@
 """Pictures of a run: grid heatmaps and learning-curve plots, as matplotlib Figures.
 
-Views read a run through `gridplan.measuring.runs.open_run` (its `cells()` table, axes and
-meta) and take curve fits and advice as arguments; nothing below imports views.
+Figures read a run through `gridplan.measuring.runs.open_run` (its `cells()` table, axes
+and meta) and take curve fits and advice as arguments; no lower layer imports this module.
 Figures are built without pyplot, so none lingers in a global list; save them
 with `save_figure` (PNG or SVG by extension) or embed them with
 `figure_to_png_bytes` / `figure_to_svg_text`.
