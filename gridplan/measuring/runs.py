@@ -42,6 +42,10 @@ class Run:
     def model_name(self) -> str:
         return self.model_names[self.model]
 
+    def axis_labels(self, axis: str) -> list[str]:
+        """Ordered labels of one axis as text (stored as (label, value) pairs or plain labels)."""
+        return [str(e[0]) if isinstance(e, (list, tuple)) else str(e) for e in self.axes.get(axis, [])]
+
     def cells(self) -> pd.DataFrame:
         """This model's tidy per-fold table."""
         with Store.open_existing(self.run_dir, model=self.model) as store:

@@ -102,12 +102,6 @@ def _stroke(width: float = 3.0, colour: str = "black") -> list:
 
 # --- reading a run --------------------------------------------------------------------
 
-def _labels(run: "Run", axis: str) -> list[str]:
-    """Ordered labels of one axis of the run (accepts (label, value) pairs or plain labels)."""
-    entries = run.axes.get(axis, [])
-    return [str(e[0]) if isinstance(e, (list, tuple)) else str(e) for e in entries]
-
-
 def _sizes(run: "Run") -> list[int]:
     """Training sizes of the grid, ascending."""
     entries = run.axes.get("size")
@@ -167,7 +161,7 @@ def _usable_cells(run: "Run") -> tuple[pd.DataFrame, int]:
 
 def _resolve_capacity(run: "Run", capacity: str | int | None, means: pd.DataFrame) -> int:
     """Index of a capacity given by its label; None picks the lowest error at the largest size."""
-    labels = _labels(run, "capacity")
+    labels = run.axis_labels("capacity")
     if capacity is None:
         largest = means["size_index"].max()
         at_largest = means[means["size_index"] == largest]
@@ -185,7 +179,7 @@ def _resolve_setting(run: "Run", setting: Sequence[Any]) -> tuple[int, int]:
         raise GridplanError("A setting is a pair (capacity, regularisation) of labels or indices.")
     resolved = []
     for value, axis in zip(setting, HEATMAP_AXES):
-        labels = _labels(run, axis)
+        labels = run.axis_labels(axis)
         if isinstance(value, (int, np.integer)) and not isinstance(value, bool):
             if not 0 <= int(value) < len(labels):
                 raise GridplanError(f"The {axis} index {int(value)} is outside the grid "
@@ -249,10 +243,10 @@ def heatmap_data(run: "Run", show: str = "validation", axis: str = "capacity",
     ok, skipped = _usable_cells(run)
     means = _cell_means(ok)
     sizes = _sizes(run)
-    regularization_labels = _labels(run, "regularization")
+    regularization_labels = run.axis_labels("regularization")
     fixed_capacity = None
     if axis == "capacity":
-        row_labels = _labels(run, "capacity")
+        row_labels = run.axis_labels("capacity")
         chosen = means.loc[means.groupby(["capacity_index", "size_index"])["validation"].idxmin()]
         row_key = "capacity_index"
     else:
@@ -333,8 +327,8 @@ def _state_of(entry: Mapping[str, Any], previous: dict[str, Any], run: "Run") ->
         index_key = f"{axis}_index"
         if source.get(index_key) is not None:
             state[index_key] = int(source[index_key])
-        elif source.get(axis) is not None and str(source[axis]) in _labels(run, axis):
-            state[index_key] = _labels(run, axis).index(str(source[axis]))
+        elif source.get(axis) is not None and str(source[axis]) in run.axis_labels(axis):
+            state[index_key] = run.axis_labels(axis).index(str(source[axis]))
     for key in ("train_size", "size", "samples"):
         if isinstance(source.get(key), (int, float, np.integer, np.floating)):
             state["train_size"] = float(source[key])
@@ -352,10 +346,10 @@ def _step_text(number: int, step: Mapping[str, Any], state: Mapping[str, Any], r
     action = str(step.get("action", "step"))
     where = []
     if "capacity_index" in state:
-        where.append(f"{_short_param(run, 'capacity')} {_labels(run, 'capacity')[state['capacity_index']]}")
-    if "regularization_index" in state and len(_labels(run, "regularization")) > 1:
+        where.append(f"{_short_param(run, 'capacity')} {run.axis_labels('capacity')[state['capacity_index']]}")
+    if "regularization_index" in state and len(run.axis_labels("regularization")) > 1:
         where.append(f"{_short_param(run, 'regularization')} "
-                     f"{_labels(run, 'regularization')[state['regularization_index']]}")
+                     f"{run.axis_labels('regularization')[state['regularization_index']]}")
     if "train_size" in state:
         where.append(f"{_number_text(state['train_size'])} rows")
     parts = [f"{number}. {action}" + (f" -> {', '.join(where)}" if where else "")]
@@ -540,11 +534,11 @@ def heatmap_figure(run: "Run", show: str = "validation", axis: str = "capacity",
 def _heatmap_title(run: "Run", data: HeatmapData) -> str:
     what = SHOW_TITLES[data.show]
     if data.axis == "capacity":
-        reg = "" if len(_labels(run, "regularization")) <= 1 else (
+        reg = "" if len(run.axis_labels("regularization")) <= 1 else (
             f"\neach cell at the {_short_param(run, 'regularization')} with the lowest "
             "validation error (named under the value)")
         return f"{what} by capacity and training rows{reg}"
-    label = _labels(run, "capacity")[data.capacity_index]
+    label = run.axis_labels("capacity")[data.capacity_index]
     return (f"{what} by regularisation and training rows\nat "
             f"{_short_param(run, 'capacity')} {label}")
 
@@ -696,8 +690,8 @@ def _plain_size_ticks(ax: "Axes") -> None:
 
 
 def _setting_title(run: "Run", capacity_index: int, regularization_index: int) -> str:
-    text = f"{_short_param(run, 'capacity')} {_labels(run, 'capacity')[capacity_index]}"
-    regularization = _labels(run, "regularization")
+    text = f"{_short_param(run, 'capacity')} {run.axis_labels('capacity')[capacity_index]}"
+    regularization = run.axis_labels("regularization")
     if len(regularization) > 1:
         text += f", {_short_param(run, 'regularization')} {regularization[regularization_index]}"
     return text
@@ -807,7 +801,7 @@ def small_multiples_figure(run: "Run", fits: Mapping[tuple[int, int], "CurveFit"
         handles = handles + [Line2D([], [], color="none")]
     figure.legend(handles, labels, loc="outside lower center", ncols=3, fontsize=8, frameon=False)
     chosen = "chosen settings" if settings is not None else (
-        "best regularisation per capacity" if len(_labels(run, "regularization")) > 1 else "each capacity")
+        "best regularisation per capacity" if len(run.axis_labels("regularization")) > 1 else "each capacity")
     figure.suptitle(f"Learning curves, {chosen} ({_metric_name(run)})", fontsize=11, x=0.02,
                     ha="left")
     return figure

@@ -21,11 +21,6 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
 BACKTEST_FILE = "backtest.json"
 
 
-def axis_labels(run: "Run", axis: str) -> list[str]:
-    """The run's values along `axis` as text, as the user wrote them."""
-    return [str(e[0]) if isinstance(e, (list, tuple)) else str(e) for e in run.axes.get(axis, [])]
-
-
 
 # --- what the report is built from ---------------------------------------------------------------------
 
@@ -107,7 +102,7 @@ def gather_inputs(run_dir: str | Path, *, target: float | None = None,
     if cells.empty or not (cells["status"] == "ok").any():
         raise GridplanError(f"{run_dir} holds no finished fits yet; run the grid before writing a report.")
     if at is not None:
-        parse_operating_point(at, axis_labels(run, "capacity"), axis_labels(run, "regularization"))
+        parse_operating_point(at, run.axis_labels("capacity"), run.axis_labels("regularization"))
     config = run.config
     if target is None and config is not None:
         target = config.target_error

@@ -26,7 +26,7 @@ from gridplan.common.checks import DEFAULT_BOOT
 from gridplan.common.errors import GridplanError
 from gridplan.common.metrics import METRIC_LABELS, metric_label
 from gridplan.common.wording import money, plural, sig
-from gridplan.showing.gather import BACKTEST_FILE, ReportInputs, axis_labels, gather_inputs
+from gridplan.showing.gather import BACKTEST_FILE, ReportInputs, gather_inputs
 from gridplan.showing.markup import (
     Markup,
     drawn,
@@ -144,7 +144,7 @@ def _operating_key(inputs: ReportInputs) -> tuple[int, int]:
 def _setting_words(run: "Run", capacity: Any, regularization: Any) -> str:
     cap = run.meta.get("capacity_param") or "capacity"
     reg = run.meta.get("regularization_param") or "regularisation"
-    if len(axis_labels(run, "regularization")) <= 1:
+    if len(run.axis_labels("regularization")) <= 1:
         return f"{cap} {capacity}"
     return f"{cap} {capacity}, {reg} {regularization}"
 
@@ -213,7 +213,7 @@ def _at_a_glance(inputs: ReportInputs) -> Markup:
         value = float(rows[rows["train_size"] == size]["validation_error"].mean())
         why = "no target error is set" if inputs.target is None else "the advisor could not judge"
         tiles.append(_tile("Verdict", "none", why, "verdict"))
-        where = _setting_words(run, axis_labels(run, "capacity")[ci], axis_labels(run, "regularization")[ri])
+        where = _setting_words(run, run.axis_labels("capacity")[ci], run.axis_labels("regularization")[ri])
         tiles.append(_tile("Best validation error", _num(value), f"at {where}, {_count(size)} rows",
                            "error", value))
         tiles.append(_tile("Cheapest plan", "not planned", why, "plan-cost"))
@@ -291,8 +291,8 @@ def _job_section(inputs: ReportInputs, number: int) -> Markup:
         ("Task", meta.get("task", "?")),
         ("Feature columns", ", ".join(map(str, features)) if features else "all but the target"),
         ("Model", model),
-        (f"Capacity axis ({cap_param})", ", ".join(axis_labels(run, "capacity"))),
-        (f"Regularisation axis ({reg_param})", ", ".join(axis_labels(run, "regularization")) or "none"),
+        (f"Capacity axis ({cap_param})", ", ".join(run.axis_labels("capacity"))),
+        (f"Regularisation axis ({reg_param})", ", ".join(run.axis_labels("regularization")) or "none"),
         ("Training sizes (rows)", ", ".join(f"{int(s):,}" for s in meta.get("sizes", []))),
         ("Resampling", resampling),
         ("Metric", _metric_words(run)),
@@ -507,9 +507,9 @@ def _maps_section(inputs: ReportInputs, number: int) -> Markup:
                        "Heatmap of the gap between validation and training error",
                        "Gap between validation and training error: a large gap that shrinks with "
                        "more rows points to variance; a small gap with a high error points to bias."))
-    if len(axis_labels(run, "regularization")) > 1:
+    if len(run.axis_labels("regularization")) > 1:
         ci, _ = _operating_key(inputs)
-        capacity = axis_labels(run, "capacity")[ci]
+        capacity = run.axis_labels("capacity")[ci]
         body.append(drawn(lambda: figures.heatmap_figure(run, show="validation", axis="regularization",
                                                         capacity=capacity, advice=a, target=target),
                            "Heatmap of validation error by regularisation at the operating capacity",
@@ -522,7 +522,7 @@ def _curves_section(inputs: ReportInputs, number: int) -> Markup:
     from gridplan.showing import figures
     run, fits = inputs.run, inputs.fits
     key = _operating_key(inputs)
-    where = _setting_words(run, axis_labels(run, "capacity")[key[0]], axis_labels(run, "regularization")[key[1]])
+    where = _setting_words(run, run.axis_labels("capacity")[key[0]], run.axis_labels("regularization")[key[1]])
     body = [para(f"Solid lines are measured means with the fold range shaded; the dashed line is the "
                f"fitted curve carried beyond the data with its {inputs.confidence:.0%} band (hatched). "
                f"The dotted line is that setting's estimated floor, the dash-dot line the target.")]
@@ -561,7 +561,7 @@ def _settings_section(inputs: ReportInputs, number: int) -> Markup:
                       float(largest["train_error"].mean()), float(largest["validation_error"].mean())))
     lines.sort(key=lambda line: (line[3], line[0]))
     here = _operating_key(inputs)
-    capacity, regularization = axis_labels(run, "capacity"), axis_labels(run, "regularization")
+    capacity, regularization = run.axis_labels("capacity"), run.axis_labels("regularization")
     scale = float(ok["validation_error"].abs().max())
     table_rows, classes = [], []
     for key, size, train, validation in lines:
