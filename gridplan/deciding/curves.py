@@ -410,9 +410,7 @@ def _edge_reach(edge: Callable, grid: np.ndarray, values: np.ndarray, target: fl
     low, high = int(math.floor(grid[first - 1])), int(math.ceil(grid[first]))
     while high - low > 1:
         inside = np.unique(np.linspace(low, high, SEARCH_POINTS + 2)[1:-1].astype(np.int64))
-        inside = inside[(inside > low) & (inside < high)]
-        if inside.size == 0:
-            break
+        inside = inside[(inside > low) & (inside < high)]     # never empty: high - low >= 2
         below = np.flatnonzero(np.asarray(edge(inside.astype(float))) <= reached)
         if below.size == 0:
             low = int(inside[-1])

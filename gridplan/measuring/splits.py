@@ -69,10 +69,10 @@ def repeated_kfold(n_rows: int, *, folds: int, repeats: int, seed: int):
     rows = np.arange(n_rows)
     sizes = np.full(folds, n_rows // folds)
     sizes[:n_rows % folds] += 1
+    stops = np.cumsum(sizes)
     for _ in range(repeats):
         order = rows.copy()
         rng.shuffle(order)
-        stops = np.cumsum(sizes)
         for stop, size in zip(stops, sizes):
             held_out = np.zeros(n_rows, dtype=bool)
             held_out[order[stop - size:stop]] = True
