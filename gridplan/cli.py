@@ -166,20 +166,24 @@ def _duration(seconds: float) -> str:
 
 
 def _estimate_line(spec, jobs: int, done: list[set] | None = None) -> tuple[float, str, list]:
-    """Time one unfinished task at the largest size per model and scale it to the rest.
+    """Time unfinished tasks at the largest size per model and scale them to the rest.
 
     Returns (seconds, the line to print, per model the probe's rows for the run to keep).
     """
     from gridplan.measuring.runner import estimate_seconds
-    seconds, probe, probed = 0.0, 0.0, []
+    seconds, probe, tasks, probed = 0.0, 0.0, 1, []
     for index, model in enumerate(spec.models):
-        more, taken, rows = estimate_seconds(model, jobs, done[index] if done else None)
-        seconds, probe = seconds + more, max(probe, taken)
-        probed.append(rows)
+        estimate = estimate_seconds(model, jobs, done[index] if done else None)
+        seconds += estimate.seconds
+        if estimate.probe_seconds > probe:
+            probe, tasks = estimate.probe_seconds, estimate.probe_tasks
+        probed.append(estimate.rows)
     if probe == 0.0:
         return 0.0, f"{'estimate'.ljust(14)}  nothing left to run: every fit is stored", probed
+    timed = ("one task at the largest size took" if tasks == 1 else
+             f"{tasks} tasks at the largest size, side by side, took")
     return seconds, (f"{'estimate'.ljust(14)}  about {_duration(seconds)} with {jobs} worker"
-                     f"{'s' if jobs > 1 else ''} (one task at the largest size took {probe:.2f} s)"), probed
+                     f"{'s' if jobs > 1 else ''} ({timed} {probe:.2f} s)"), probed
 
 
 def _finished_keys(run_dir: Path, models: int = 1) -> list[set]:

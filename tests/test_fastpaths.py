@@ -120,11 +120,44 @@ def test_ill_conditioned_cells_fall_back_to_the_plain_fit():
         kappa = float(cell.note.split("cond=")[1].split()[0])
         assert kappa > fastpaths.KAPPA_MAX
         ref = plain_poly_ridge(X_train, y_train, X_val, y_val, degree, alpha, "regression", "mse")
-        assert (cell.train_error, cell.validation_error) == pytest.approx(ref, rel=1e-12)
+        assert (cell.train_error, cell.validation_error) == ref   # the same arithmetic, bit for bit
     # strong regularisation keeps the same design well conditioned
     assert all(row[-1].path == "svd" for row in grid)
     assert largest_difference(grid, (X_train, y_train, X_val, y_val), degrees, alphas,
                               "regression", "mse") <= 1e-6
+
+
+@pytest.mark.parametrize("shape", [(40, 6), (8, 30)])
+@pytest.mark.parametrize("targets", [1, 3])
+def test_cholesky_ridge_is_the_library_solve_bit_for_bit(shape, targets):
+    # reference library: sklearn.linear_model.ridge_regression (default dense solver: Cholesky on
+    # X^T X + alpha I, or on X X^T + alpha I when there are more columns than rows)
+    from sklearn.linear_model import ridge_regression
+    rng = np.random.default_rng(shape[0] + targets)
+    X = rng.normal(size=shape)
+    X[:, 1] = X[:, 0] + 1e-8 * rng.normal(size=shape[0])       # nearly collinear: rounding shows
+    X -= X.mean(axis=0)
+    y = rng.normal(size=(shape[0], targets)) if targets > 1 else rng.normal(size=shape[0])
+    weights = np.ones(shape[0]) if targets > 1 else None
+    for alpha in (1e-9, 1e-3, 10.0):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            theirs = ridge_regression(X, y, alpha, sample_weight=weights)
+        ours = fastpaths._cholesky_ridge(X, y, alpha, weights)
+        assert ours.shape == theirs.shape and np.array_equal(ours, theirs)
+
+
+def test_cholesky_ridge_hands_a_singular_system_to_the_library():
+    # reference library: ridge_regression changes to its SVD solver when Cholesky fails
+    # (a zero column with alpha 0 makes X^T X singular)
+    from sklearn.linear_model import ridge_regression
+    rng = np.random.default_rng(4)
+    X = np.hstack([rng.normal(size=(12, 3)), np.zeros((12, 1))])
+    X -= X.mean(axis=0)
+    y = rng.normal(size=12)
+    ours = fastpaths._cholesky_ridge(X, y, 0.0, None)
+    assert np.array_equal(ours, ridge_regression(X, y, 0.0))
+    assert ours[-1] == 0.0
 
 
 def test_decision_on_a_tie_falls_back():

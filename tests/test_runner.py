@@ -293,6 +293,45 @@ def test_shared_polynomial_features_have_a_size_limit(tmp_path, monkeypatch):
     assert runner.with_shared_features(tasks, work).poly_features is None
 
 
+def test_threaded_tasks_are_probed_side_by_side_and_kept(tmp_path, monkeypatch):
+    # common practice, no published source: with two workers the estimate times two ridge tasks
+    # at the largest size at once (no idle core), and `run` stores both instead of refitting them
+    from typer.testing import CliRunner
+
+    from gridplan.cli import app
+    from gridplan.measuring import runner
+    frame = linear_data(300, 2, 0.3, seed=5)
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    config = load_config(write_config(tmp_path, {
+        "data": {"path": "data.csv", "target": "y"},
+        "model": {"family": "poly-ridge", "capacity": {"values": [1, 2, 3]},
+                  "regularization": {"values": [0.1, 10.0]}},
+        "sizes": {"values": [30, 90, 200]}, "resampling": {"folds": 3, "seed": 2}}))
+    spec = resolve(config)
+    estimate = runner.estimate_seconds(spec, jobs=2)
+    assert estimate.probe_tasks == 2
+    assert {r.size_index for r in estimate.rows} == {2} and len({r.fold for r in estimate.rows}) == 2
+    tasks = runner.build_tasks(spec, set())
+    assert estimate.seconds == pytest.approx(
+        estimate.probe_seconds * len(tasks) * np.mean([30, 90, 200]) / 200 / 2)
+    calls = []
+    real = runner.run_task
+
+    def counted(task, work):
+        calls.append(task)
+        return real(task, work)
+
+    monkeypatch.setattr(runner, "run_task", counted)
+    result = CliRunner().invoke(app, ["run", str(config.source), "--out", str(tmp_path / "cli"),
+                                      "--jobs", "2"])
+    assert result.exit_code == 0, result.output
+    assert "2 tasks at the largest size, side by side, took" in result.output
+    assert len(calls) == len(set(calls)) == len(tasks)
+    via_cli = without_times(api.open_run(tmp_path / "cli").cells())
+    api.run(config, out=tmp_path / "api", jobs=1)
+    pd.testing.assert_frame_equal(via_cli, without_times(api.open_run(tmp_path / "api").cells()))
+
+
 def test_the_command_keeps_its_estimate_probe_instead_of_fitting_it_twice(tmp_path, monkeypatch):
     # The estimate line times one task; `run` stores that task's rows and fits every other task once.
     from typer.testing import CliRunner

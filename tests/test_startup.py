@@ -91,12 +91,27 @@ def test_a_well_conditioned_ridge_run_loads_no_scikit_learn(tmp_path):
     assert len(cells) == 3 * 3 * 3 * 3 and (cells["status"] == "ok").all()
 
 
-def test_an_ill_conditioned_cell_still_gets_the_library_fit(tmp_path):
-    # Degree 8 at alpha 1e-9 cannot be promised by the shortcut: scikit-learn fits it.
+def test_an_ill_conditioned_cell_gets_the_library_numbers_without_the_library(tmp_path):
+    # reference library: the same grid with the shortcut switched off ([run] fast_path = false) is
+    # Pipeline(PolynomialFeatures, StandardScaler, Ridge) fitted cell by cell. Degree 8 at alpha
+    # 1e-9 is past the SVD shortcut's bound, so those cells are solved the library's way (Cholesky
+    # of the normal equations on the same products) and must equal its fits exactly.
+    from gridplan.api import open_run, run
+
     loaded = _fresh_run(tmp_path, [8], [1e-9])
-    assert loaded["sklearn"] is True
-    from gridplan.api import open_run
-    assert (open_run(tmp_path / "run").cells()["path"] == "plain-fallback").any()
+    assert loaded == {"sklearn": False, "scipy.stats": False}
+    ours = open_run(tmp_path / "run").cells()
+    assert (ours["path"] == "plain-fallback").any()
+    text = (tmp_path / "grid.toml").read_text(encoding="utf-8")
+    (tmp_path / "plain.toml").write_text(text + "\n[run]\nfast_path = false\n", encoding="utf-8")
+    plain = open_run(run(tmp_path / "plain.toml", out=tmp_path / "plain", jobs=1)).cells()
+    assert (plain["path"] == "plain").all()
+    keys = ["train_size", "repeat", "fold"]
+    joined = ours.merge(plain, on=keys, suffixes=("", "_plain"))
+    assert len(joined) == len(ours) == len(plain)
+    fallback = joined[joined["path"] == "plain-fallback"]
+    assert (fallback["validation_error"] == fallback["validation_error_plain"]).all()
+    assert (fallback["train_error"] == fallback["train_error_plain"]).all()
 
 
 def test_the_blas_limit_covers_scipy_loaded_after_it():

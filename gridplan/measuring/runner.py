@@ -14,7 +14,7 @@ import time
 import warnings
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass
-from typing import Callable, Iterator
+from typing import Callable, Iterator, NamedTuple
 
 import numpy as np
 
@@ -455,24 +455,43 @@ def run_grid(spec: GridSpec, store: Store, *, jobs: int = 1, backend: str | None
     return written
 
 
-def estimate_seconds(spec: GridSpec, jobs: int,
-                     done: set[tuple[int, int, int, int, int]] | None = None
-                     ) -> tuple[float, float, list[FoldRow]]:
-    """Rough wall time of the unfinished grid from one timed task at the largest size.
+class Estimate(NamedTuple):
+    """What the timed probe of a grid found, and the rows it fitted (for the run to keep)."""
 
-    Returns (estimate, probe seconds, the probe's rows), so that a run can keep
-    the probe's fits instead of fitting them again; (0, 0, []) when nothing is
-    left to run. Work is taken as proportional to the training size, which
+    seconds: float          # rough wall time of the unfinished grid
+    probe_seconds: float    # wall time of the probe
+    probe_tasks: int        # tasks timed side by side in it
+    rows: list[FoldRow]
+
+
+def estimate_seconds(spec: GridSpec, jobs: int,
+                     done: set[tuple[int, int, int, int, int]] | None = None) -> Estimate:
+    """Rough wall time of the unfinished grid from timed tasks at the largest size.
+
+    The probe's rows come back so that a run can keep them instead of fitting
+    them again; nothing is timed when nothing is left to run. Tasks that run
+    on threads are probed `jobs` at a time, side by side as the run will run
+    them, so no core idles while the estimate is taken; others one at a time
+    in this process. Work is taken as proportional to the training size, which
     holds roughly for the built-in families.
     """
     tasks = build_tasks(spec, done or set())
     if not tasks:
-        return 0.0, 0.0, []
+        return Estimate(0.0, 0.0, 0, [])
     largest = max(t.size_index for t in tasks)
-    probe = max((t for t in tasks if t.size_index == largest),
-                key=lambda t: (max(t.capacity_indices), -min(t.regularization_indices)))
+    candidates = sorted((t for t in tasks if t.size_index == largest),
+                        key=lambda t: (max(t.capacity_indices), -min(t.regularization_indices)),
+                        reverse=True)
+    threaded = jobs > 1 and candidates[0].kind in THREADED_KINDS
+    probes = candidates[:jobs] if threaded else candidates[:1]
+    work = workload_of(spec)
     started = time.perf_counter()
-    rows = run_task(probe, workload_of(spec))
+    if threaded:
+        rows = [row for batch in execute(probes, work, jobs=jobs) for row in batch]
+    else:
+        rows = run_task(probes[0], work)
     probe_seconds = time.perf_counter() - started
+    # each probe had a core of its own, as each of the run's tasks will
     scale = float(np.mean([spec.sizes[t.size_index] for t in tasks])) / spec.sizes[largest]
-    return probe_seconds * len(tasks) * scale / max(1, jobs), probe_seconds, rows
+    return Estimate(probe_seconds * len(tasks) * scale / max(1, jobs), probe_seconds,
+                    len(probes), rows)
