@@ -355,3 +355,30 @@ def test_the_command_keeps_its_estimate_probe_instead_of_fitting_it_twice(tmp_pa
     via_cli = without_times(api.open_run(tmp_path / "cli").cells())
     api.run(config, out=tmp_path / "api", jobs=1)
     pd.testing.assert_frame_equal(via_cli, without_times(api.open_run(tmp_path / "api").cells()))
+
+
+def test_a_run_is_read_once_per_state_of_its_store(tmp_path, monkeypatch):
+    # common practice, no published source: one command asks for a run's cells several times; the
+    # store is read again only after it changed, and callers get copies they may change freely
+    import sqlite3
+
+    from gridplan.measuring.store import STORE_NAME, Store
+    config = _resume_config(tmp_path)
+    api.run(config, out=tmp_path / "run", jobs=1)
+    reads = []
+    real = Store.cells
+
+    def counted(self):
+        reads.append(1)
+        return real(self)
+
+    monkeypatch.setattr(Store, "cells", counted)
+    run = api.open_run(tmp_path / "run")
+    first = run.cells()
+    first["validation_error"] = -1.0                       # the caller's copy only
+    second = api.open_run(tmp_path / "run").cells()
+    assert len(reads) == 1 and (second["validation_error"] >= 0).all()
+    with sqlite3.connect(tmp_path / "run" / STORE_NAME) as connection:
+        connection.execute("DELETE FROM folds WHERE size_index = 0")
+    third = run.cells()
+    assert len(reads) == 2 and len(third) == len(second) - (second["train_size"] == 20).sum()

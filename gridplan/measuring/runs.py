@@ -18,6 +18,21 @@ from gridplan.measuring.config import Config, parse_config
 from gridplan.measuring.store import CONFIG_COPY, CURVES_NAME, MODELS_KEY, STORE_NAME, Store
 
 LOCK_NAME = "run.lock"
+#: Cell tables kept in memory, so one command reading a run several times reads the store once.
+KEPT_TABLES = 8
+_CELLS: dict[tuple[str, int], tuple[tuple, pd.DataFrame]] = {}
+
+
+def _store_stamp(run_dir: Path) -> tuple:
+    """Inode, size and modification time of the store and its journal files: change with every write."""
+    stamp = []
+    for name in (STORE_NAME, f"{STORE_NAME}-wal", f"{STORE_NAME}-journal"):
+        try:
+            status = (Path(run_dir) / name).stat()
+            stamp.append((name, status.st_ino, status.st_size, status.st_mtime_ns))
+        except OSError:
+            stamp.append((name, None, None, None))
+    return tuple(stamp)
 
 
 @dataclass
@@ -47,9 +62,18 @@ class Run:
         return [str(e[0]) if isinstance(e, (list, tuple)) else str(e) for e in self.axes.get(axis, [])]
 
     def cells(self) -> pd.DataFrame:
-        """This model's tidy per-fold table."""
-        with Store.open_existing(self.run_dir, model=self.model) as store:
-            return store.cells()
+        """This model's tidy per-fold table (a fresh copy; read once per state of the store)."""
+        key = (str(Path(self.run_dir).resolve()), self.model)
+        stamp = _store_stamp(self.run_dir)
+        kept = _CELLS.get(key)
+        if kept is None or kept[0] != stamp:
+            with Store.open_existing(self.run_dir, model=self.model) as store:
+                kept = (stamp, store.cells())
+            _CELLS.pop(key, None)
+            _CELLS[key] = kept
+            while len(_CELLS) > KEPT_TABLES:
+                _CELLS.pop(next(iter(_CELLS)))
+        return kept[1].copy()
 
     def all_cells(self) -> pd.DataFrame:
         """Every model's per-fold table, one after another (the `model` column tells them apart)."""
