@@ -28,11 +28,12 @@ from __future__ import annotations
 import math
 from dataclasses import asdict, dataclass
 from statistics import NormalDist
+from typing import Iterable
 
 import numpy as np
 
 from gridplan.common.errors import GridplanError
-from gridplan.deciding.curves import make_problem
+from gridplan.deciding.curves import CurveFit, Problem, make_problem
 
 #: Prior shape errors (relative error of a forecast's further drop; relative
 #: error of the forecast per doubling beyond the data) and their weight in
@@ -146,65 +147,70 @@ def fit_calibration(drops: np.ndarray, residuals: np.ndarray, variances: np.ndar
                        median, float(np.mean(r > 0)))
 
 
-def self_checks(settings_data: list, fits: dict, families: tuple[str, ...]):
-    """Refit each fitted setting on its smaller sizes.
+def check_problems(data, asymptote_min: float = 0.0) -> list[tuple[Problem, tuple]]:
+    """One setting's refits on its smaller sizes: each problem with what it must forecast.
+
+    `data` is the setting's measurements (`gridplan.deciding.gridfit`); each
+    entry pairs a problem (sizes up to the last one, two or three, keeping
+    at least MIN_FIT_SIZES) with the sizes it did not see and their measured
+    level and spread.
+    """
+    from gridplan.deciding.curves import level_and_spread
+
+    usable = np.any(np.isfinite(data.validation), axis=1)
+    sizes, validation = data.sizes[usable], data.validation[usable]
+    training = data.training[usable]
+    level, spread = level_and_spread(validation)
+    checks = []
+    for back in range(1, ORIGINS + 1):
+        cut = len(sizes) - back
+        if cut < MIN_FIT_SIZES:
+            break
+        try:
+            problem = make_problem(sizes[:cut], validation[:cut], training[:cut], data.info,
+                                   data.n_repeats, data.seed, asymptote_min)
+        except GridplanError:   # a truncated curve that cannot be fitted is not a check
+            continue
+        checks.append((problem, (sizes[cut:], level[cut:], spread[cut:])))
+    return checks
+
+
+def check_record(checks: Iterable[list[tuple[CurveFit | str, tuple]]]):
+    """The pooled outcome of the refits, one list of (refit, held sizes) per setting.
 
     Returns (forecast drops, residuals, their noise variances, measured levels,
     forecasts, doublings beyond the fitted sizes (capped as in the bands),
-    settings checked), one entry
-    per held size of each refit.
+    settings checked), one entry per held size of each refit.
     """
-    from gridplan.deciding.curves import fit_problems, level_and_spread
-
-    problems, held = [], []
-    for data in settings_data:
-        key = (data.info.capacity_index, data.info.regularization_index)
-        fit = fits.get(key)
-        if fit is None:
-            continue
-        usable = np.any(np.isfinite(data.validation), axis=1)
-        sizes, validation = data.sizes[usable], data.validation[usable]
-        training = data.training[usable]
-        level, spread = level_and_spread(validation)
-        for back in range(1, ORIGINS + 1):
-            cut = len(sizes) - back
-            if cut < MIN_FIT_SIZES:
-                break
-            try:
-                problems.append(make_problem(sizes[:cut], validation[:cut], training[:cut], data.info,
-                                         data.n_repeats, data.seed, fit.asymptote_min))
-            except GridplanError:   # a truncated curve that cannot be fitted is not a check
-                continue
-            held.append((key, sizes[cut:], level[cut:], spread[cut:]))
-    if not problems:
-        return (*[np.array([])] * 6, 0)
     z = NormalDist().inv_cdf(0.95)
-    drops, residuals, variances, levels, excesses, doublings, checked = [], [], [], [], [], [], set()
-    for refit, (key, sizes, level, spread) in zip(fit_problems(problems, families, CHECK_BOOT),
-                                                  held):
-        if isinstance(refit, str):
-            continue
-        forecast = refit.raw_predict(sizes)
-        low, high = refit.band(sizes, 0.9)
-        ok = np.isfinite(level) & np.isfinite(forecast)
-        if not ok.any():
-            continue
-        checked.add(key)
-        drops.append(refit.drop_beyond_data(sizes)[ok])
-        residuals.append((level - forecast)[ok])
-        variances.append((((high - low) / (2 * z)) ** 2 + spread ** 2)[ok])
-        levels.append(level[ok])
-        excesses.append(forecast[ok])
-        doublings.append(refit.doublings_beyond_data(sizes)[ok])
+    drops, residuals, variances, levels, excesses, doublings, checked = [], [], [], [], [], [], 0
+    for setting_checks in checks:
+        any_ok = False
+        for refit, (sizes, level, spread) in setting_checks:
+            if isinstance(refit, str):
+                continue
+            forecast = refit.raw_predict(sizes)
+            low, high = refit.band(sizes, 0.9)
+            ok = np.isfinite(level) & np.isfinite(forecast)
+            if not ok.any():
+                continue
+            any_ok = True
+            drops.append(refit.drop_beyond_data(sizes)[ok])
+            residuals.append((level - forecast)[ok])
+            variances.append((((high - low) / (2 * z)) ** 2 + spread ** 2)[ok])
+            levels.append(level[ok])
+            excesses.append(forecast[ok])
+            doublings.append(refit.doublings_beyond_data(sizes)[ok])
+        checked += any_ok
     if not drops:
         return (*[np.array([])] * 6, 0)
     return (*(np.concatenate(a) for a in (drops, residuals, variances, levels, excesses,
-                                          doublings)), len(checked))
+                                          doublings)), checked)
 
 
-def calibrate(settings_data: list, fits: dict, families: tuple[str, ...]) -> Calibration:
-    """This run's calibration, applied to every fit in `fits` (in place)."""
-    calibration = fit_calibration(*self_checks(settings_data, fits, families))
+def calibrate(fits: dict, checks: Iterable[list[tuple[CurveFit | str, tuple]]]) -> Calibration:
+    """This run's calibration from the refits `checks`, applied to every fit in `fits` (in place)."""
+    calibration = fit_calibration(*check_record(checks))
     for fit in fits.values():
         fit.drop_lean = calibration.lean
         fit.drop_spread = calibration.spread

@@ -15,12 +15,13 @@ import math
 import warnings
 from dataclasses import dataclass, field
 from statistics import NormalDist
-from typing import Callable, Iterable
+from typing import Callable, Iterable, Sequence
 
 import numpy as np
 
 from gridplan.common.checks import DEFAULT_BOOT, check_boot, check_confidence
 from gridplan.common.errors import GridplanError, NumericalError
+from gridplan.common.forked import local_cores, run_parts
 from gridplan.deciding.batchfit import parameters_view
 from gridplan.deciding.shapes import DEFAULT_FAMILIES, FAMILIES, TINY, Family, fit_family, start_points
 
@@ -60,6 +61,8 @@ LEVEL_DOUBLINGS_CAP = 2.0
 MONOTONE_GRID = 256
 #: Whole sizes tried at once in each round of the samples-needed search (see _edge_reach).
 SEARCH_POINTS = 64
+#: Curves a part must hold before a fit is split over cores (fewer: forking costs more).
+MIN_PROBLEMS_PER_PART = 40
 
 
 
@@ -70,6 +73,17 @@ def _row_means(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     counts = np.sum(np.isfinite(values), axis=-1)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.nansum(values, axis=-1) / counts, counts
+
+
+def _nanmedian_last(values: np.ndarray) -> np.ndarray:
+    """np.nanmedian along the last axis, without its slow path for short rows."""
+    if values.shape[-1] == 0:
+        return np.full(values.shape[:-1], np.nan)
+    ordered = np.sort(values, axis=-1)                 # NaN sort to the end
+    count = np.sum(np.isfinite(values), axis=-1)
+    low = np.take_along_axis(ordered, np.maximum(count - 1, 0)[..., None] // 2, axis=-1)[..., 0]
+    high = np.take_along_axis(ordered, (count // 2)[..., None], axis=-1)[..., 0]
+    return np.where(count > 0, (low + high) / 2, np.nan)
 
 
 def level_and_spread(errors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -89,7 +103,7 @@ def level_and_spread(errors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         largest = np.nanmax(masked, axis=-1)
-        middle = np.nanmedian(masked, axis=-1)
+        middle = _nanmedian_last(masked)
         top_level = np.nanmax(np.abs(level), axis=-1)
     spread = np.where(np.isfinite(spread) | ~has_positive[..., None], spread, largest[..., None])
     floor = np.where(has_positive, SE_FLOOR_FRACTION * middle, 0.0)
@@ -554,8 +568,25 @@ def _bootstrap_levels(problem: Problem, n_boot: int, width: int):
 
 
 def fit_problems(problems: list[Problem], families: tuple[str, ...],
-                  n_boot: int) -> list[CurveFit | str]:
-    """Fit every curve: family choice, main fit and bootstrap, all batched across curves."""
+                  n_boot: int | Sequence[int], jobs: int | None = 1) -> list[CurveFit | str]:
+    """Fit every curve: family choice, main fit and bootstrap, all batched across curves.
+
+    `n_boot` is one count of bootstrap resamples for every curve or one per curve.
+
+    With `jobs` other than 1 (None: every core) a long list is split into
+    interleaved parts fitted side by side (`gridplan.common.forked`); each
+    curve's fit does not depend on the others in its batch, so the results
+    are the same.
+    """
+    boots = np.broadcast_to(np.asarray(n_boot, dtype=int), (len(problems),))
+    parts = min(local_cores() if jobs is None else jobs, len(problems) // MIN_PROBLEMS_PER_PART)
+    if parts > 1:
+        def part(k: int) -> Callable[[], list[CurveFit | str]]:
+            return lambda: fit_problems(problems[k::parts], families, boots[k::parts])
+        results: list[CurveFit | str] = [""] * len(problems)
+        for k, fitted in enumerate(run_parts([part(k) for k in range(parts)], parts)):
+            results[k::parts] = fitted
+        return results
     if not problems:
         return []
     width = max(len(p.sizes) for p in problems)
@@ -576,14 +607,14 @@ def fit_problems(problems: list[Problem], families: tuple[str, ...],
         rows = np.array([i for i, c in enumerate(chosen) if c == name])
         theta, cost = fit_family(fam, x[rows], y[rows], w[rows],
                                   start_points(name, x[rows], y[rows], w[rows]), floors[rows])
-        boot_y, boot_w, boot_ok = zip(*(_bootstrap_levels(problems[i], n_boot, width)
+        boot_y, boot_w, boot_ok = zip(*(_bootstrap_levels(problems[i], int(boots[i]), width)
                                         for i in rows))
-        start = np.repeat(np.nan_to_num(theta, nan=1.0), n_boot, axis=0)
+        start = np.repeat(np.nan_to_num(theta, nan=1.0), boots[rows], axis=0)
         boot_theta, boot_cost = fit_family(
-            fam, np.repeat(x[rows], n_boot, axis=0), np.concatenate(boot_y),
-            np.concatenate(boot_w), [start], np.repeat(floors[rows], n_boot))
-        boot_theta = boot_theta.reshape(len(rows), n_boot, fam.n_params)
-        boot_cost = boot_cost.reshape(len(rows), n_boot)
+            fam, np.repeat(x[rows], boots[rows], axis=0), np.concatenate(boot_y),
+            np.concatenate(boot_w), [start], np.repeat(floors[rows], boots[rows]))
+        ends = np.cumsum(boots[rows])[:-1]
+        boot_theta, boot_cost = np.split(boot_theta, ends), np.split(boot_cost, ends)
         for j, i in enumerate(rows):
             problem = problems[i]
             if not np.isfinite(cost[j]):

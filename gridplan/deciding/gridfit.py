@@ -12,6 +12,8 @@ from gridplan.common.checks import DEFAULT_BOOT, check_boot, check_confidence
 from gridplan.common.errors import GridplanError
 from gridplan.common.jsonable import plain as _plain
 from gridplan.common.results import CurvesSummary
+from gridplan.deciding.calibration import CHECK_BOOT, check_problems
+from gridplan.deciding.calibration import calibrate as calibrate_fits
 from gridplan.deciding.curves import (
     DEFAULT_MAX_SIZE,
     WIDE_BAND_RATIO,
@@ -100,9 +102,19 @@ def _unfitted(info: SettingInfo, reason: str) -> dict:
             "skipped_rows": info.skipped_rows, "reason": reason}
 
 
+def _key(data: _SettingData) -> tuple[int, int]:
+    return data.info.capacity_index, data.info.regularization_index
+
+
 def _fit_settings(settings: list[_SettingData], families: tuple[str, ...], n_boot: int,
-                  asymptote_min: float = 0.0) -> list[CurveFit | dict]:
-    """Fit the given settings together; a dict describes each one that could not be fitted."""
+                  asymptote_min: float = 0.0, jobs: int | None = 1, checks: bool = False,
+                  ) -> tuple[list[CurveFit | dict], list[list]]:
+    """Fit the given settings together; a dict describes each one that could not be fitted.
+
+    With `checks`, each setting's refits on its smaller sizes (the run's own
+    extrapolation record, `calibration.check_problems`) go into the same
+    batches; they come back as one list of (refit, held sizes) per setting.
+    """
     results: list[CurveFit | dict | None] = [None] * len(settings)
     problems, where = [], []
     for i, data in enumerate(settings):
@@ -114,14 +126,26 @@ def _fit_settings(settings: list[_SettingData], families: tuple[str, ...], n_boo
             where.append(i)
         except GridplanError as problem:
             results[i] = _unfitted(data.info, str(problem))
-    for i, fitted in zip(where, fit_problems(problems, families, n_boot)):
-        results[i] = _unfitted(settings[i].info, fitted) if isinstance(fitted, str) else fitted
-    return results
+    boots = [n_boot] * len(problems)
+    held = []
+    if checks:
+        for i, data in enumerate(settings):
+            for problem, sizes in check_problems(data, asymptote_min):
+                problems.append(problem)
+                held.append((i, sizes))
+        boots += [CHECK_BOOT] * len(held)
+    fitted = fit_problems(problems, families, boots, jobs)
+    for i, result in zip(where, fitted):
+        results[i] = _unfitted(settings[i].info, result) if isinstance(result, str) else result
+    refits: list[list] = [[] for _ in settings]
+    for (i, sizes), refit in zip(held, fitted[len(where):]):
+        refits[i].append((refit, sizes))
+    return results, refits
 
 
 def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
              n_boot: int = DEFAULT_BOOT, seed: int = 0, share_floor: bool = True,
-             calibrate: bool = True) -> GridCurves:
+             calibrate: bool = True, jobs: int | None = None) -> GridCurves:
     """Fit a learning curve for every (capacity, regularisation) setting of a grid.
 
     Only rows with status "ok" are used; the others are counted per setting.
@@ -133,6 +157,8 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
     refitted with its asymptote bounded there. With `calibrate`, every
     forecast beyond the data carries this run's own extrapolation record
     (`gridplan.deciding.calibration`), kept in `GridCurves.calibration`.
+    `jobs` cores fit side by side (None: all of this machine's; the results
+    do not depend on it).
     """
     missing = [c for c in CELL_COLUMNS if c not in cells.columns]
     if missing:
@@ -143,24 +169,26 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
     check_boot(n_boot)
     settings = _settings_data(cells, seed)
     grid = GridCurves()
-    for data, result in zip(settings, _fit_settings(settings, families, n_boot)):
-        info = data.info
+    results, refits = _fit_settings(settings, families, n_boot, jobs=jobs, checks=calibrate)
+    for data, result in zip(settings, results):
         if isinstance(result, CurveFit):
-            grid[(info.capacity_index, info.regularization_index)] = result
+            grid[_key(data)] = result
         else:
             grid.unfitted.append(result)
     grid.floor = shared_floor(grid) if grid else None
     if share_floor and grid.floor is not None:
         bound = grid.floor.low
-        again = [data for data in settings
-                 if (key := (data.info.capacity_index, data.info.regularization_index)) in grid
-                 and grid[key].asymptote < bound]
-        for data, result in zip(again, _fit_settings(again, families, n_boot, bound)):
+        again = [i for i, data in enumerate(settings)
+                 if _key(data) in grid and grid[_key(data)].asymptote < bound]
+        results, again_refits = _fit_settings([settings[i] for i in again], families, n_boot,
+                                              bound, jobs, calibrate)
+        for i, result, setting_refits in zip(again, results, again_refits):
             if isinstance(result, CurveFit):
-                grid[(data.info.capacity_index, data.info.regularization_index)] = result
+                grid[_key(settings[i])] = result
+                refits[i] = setting_refits
     if calibrate and grid:
-        from gridplan.deciding.calibration import calibrate as calibrate_fits
-        grid.calibration = calibrate_fits(settings, grid, families)
+        grid.calibration = calibrate_fits(
+            grid, [refits[i] for i, data in enumerate(settings) if _key(data) in grid])
     return grid
 
 

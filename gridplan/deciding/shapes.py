@@ -253,13 +253,18 @@ def fit_family(fam: Family, x, y, w, starts: list[np.ndarray],
     lower = np.tile(np.array(fam.lower, dtype=float), (len(x), 1))
     lower[:, 0] = np.maximum(lower[:, 0], floor)
     upper = np.array(fam.upper, dtype=float)
+    # All starts in one batch (each row's fit is independent of the others'),
+    # so the iterations' fixed cost is paid once, not once per start.
+    n = len(starts)
+    stacked = [np.concatenate([a] * n) for a in (np.asarray(x), np.asarray(y), np.asarray(w), lower)]
+    theta, cost = fit_batch(fam.evaluate, fam.jacobian, *stacked[:3], np.concatenate(starts),
+                            stacked[3], upper)
     best_theta = np.full((len(x), fam.n_params), np.nan)
     best_cost = np.full(len(x), np.inf)
-    for start in starts:
-        theta, cost = fit_batch(fam.evaluate, fam.jacobian, x, y, w, start, lower, upper)
-        finite = np.all(np.isfinite(theta), axis=1)
-        better = finite & (cost < best_cost)
-        best_theta[better], best_cost[better] = theta[better], cost[better]
+    for start_theta, start_cost in zip(np.split(theta, n), np.split(cost, n)):
+        finite = np.all(np.isfinite(start_theta), axis=1)
+        better = finite & (start_cost < best_cost)
+        best_theta[better], best_cost[better] = start_theta[better], start_cost[better]
     return best_theta, best_cost
 
 

@@ -82,6 +82,15 @@ SHOW_TITLES = {
 
 # --- matplotlib set-up --------------------------------------------------------------
 
+def load_drawing_libraries() -> None:
+    """Import matplotlib (on the Agg canvas) and seaborn now, before any figure is drawn."""
+    import matplotlib
+    if "matplotlib.pyplot" not in sys.modules:
+        matplotlib.use("Agg")
+    import matplotlib.backends.backend_agg  # noqa: F401
+    import seaborn  # noqa: F401
+
+
 def _new_figure(width: float, height: float) -> "Figure":
     """A Figure on the non-interactive Agg canvas, not registered with pyplot."""
     import matplotlib

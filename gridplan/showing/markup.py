@@ -11,9 +11,12 @@ from __future__ import annotations
 import base64
 import html
 import warnings
+from contextvars import ContextVar
+from functools import partial
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Sequence
 
 from gridplan.common.errors import GridplanError
+from gridplan.common.forked import run_parts
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.figure import Figure
@@ -94,13 +97,56 @@ def png_figure(figure: "Figure", alt: str, caption: str) -> Markup:
                   f"<figcaption>{esc(caption)}</figcaption></figure>")
 
 
-def drawn(make: Callable[[], "Figure"], alt: str, caption: str) -> Markup:
+def _figure(make: Callable[[], "Figure"], alt: str, caption: str) -> Markup:
     """A figure, or a note saying why it could not be drawn."""
     try:
         figure = make()
     except GridplanError as problem:
         return para(f"This picture could not be drawn: {problem}", "note")
     return png_figure(figure, alt, caption)
+
+
+#: Figures asked for while a page is built by `with_figures`; None outside it.
+_PENDING: ContextVar[list | None] = ContextVar("gridplan_pending_figures", default=None)
+
+
+def _placeholder(number: int) -> str:
+    # An HTML comment: escaped data can never contain "<", so it cannot collide.
+    return f"<!--gridplan-figure-{number}-->"
+
+
+def drawn(make: Callable[[], "Figure"], alt: str, caption: str) -> Markup:
+    """A figure, or a note saying why it could not be drawn.
+
+    While `with_figures` builds a page, the figure is only noted here and a
+    placeholder stands in its place until all of the page's figures are drawn.
+    """
+    pending = _PENDING.get()
+    if pending is None:
+        return _figure(make, alt, caption)
+    pending.append(partial(_figure, make, alt, caption))
+    return Markup(_placeholder(len(pending) - 1))
+
+
+def with_figures(build: Callable[[], str], jobs: int | None = None) -> str:
+    """The text `build()` returns, with the figures it asked for drawn side by side.
+
+    Drawing is most of a page's time and its figures do not depend on each
+    other, so they are drawn `jobs` at a time (None: every core) by
+    `gridplan.common.forked`; the page is the same either way.
+    """
+    pending: list = []
+    token = _PENDING.set(pending)
+    try:
+        page = build()
+    finally:
+        _PENDING.reset(token)
+    if len(pending) > 1:
+        from gridplan.showing.figures import load_drawing_libraries
+        load_drawing_libraries()       # once here, not once in every forked drawer
+    for number, markup in enumerate(run_parts(pending, jobs)):
+        page = page.replace(_placeholder(number), markup, 1)
+    return page
 
 
 def page_style() -> str:

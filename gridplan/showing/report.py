@@ -38,6 +38,7 @@ from gridplan.showing.markup import (
     render_page,
     section,
     table,
+    with_figures,
 )
 from gridplan.showing.text import left_with_unlimited_data, mean_meets_but_interval_not
 
@@ -725,8 +726,12 @@ def _footer(inputs: ReportInputs) -> Markup:
                   f"This file is self-contained: it needs no network and no scripts.</p></footer>")
 
 
-def report_html(inputs: ReportInputs) -> str:
-    """The whole report as one HTML document."""
+def report_html(inputs: ReportInputs, jobs: int | None = None) -> str:
+    """The whole report as one HTML document, its figures drawn `jobs` at a time (None: every core)."""
+    return with_figures(lambda: _page(inputs), jobs)
+
+
+def _page(inputs: ReportInputs) -> str:
     sections = [_job_section, _models_section, _diagnosis_section, _plan_section, _actions_section,
                 _maps_section, _curves_section, _settings_section, _backtest_section,
                 _skipped_section, _cautions_section]

@@ -1,0 +1,65 @@
+"""Independent pieces of in-process work spread over this machine's cores by fork.
+
+The deciding and showing sides have work that splits into independent parts
+(batches of curve fits, figures of a report) whose inputs are large Python
+objects and whose set-up (imports) costs more than the work itself. A forked
+child starts with all of that already in memory, so only the results travel
+back (pickled). Where fork is not offered (Windows) or not safe (macOS), or
+there is one core or one part, the parts run here, one after another: the
+answers are the same either way.
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+import sys
+import warnings
+from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
+from typing import Callable, Sequence, TypeVar
+
+T = TypeVar("T")
+
+#: The parts of the map now in progress; a forked child reads its part from here.
+_PARTS: Sequence[Callable[[], object]] = ()
+
+
+def local_cores() -> int:
+    """Cores this process may use (its CPU affinity where the system reports one)."""
+    if hasattr(os, "sched_getaffinity"):
+        return max(1, len(os.sched_getaffinity(0)))
+    return max(1, os.cpu_count() or 1)
+
+
+def can_fork() -> bool:
+    """Fork is offered and safe with the libraries loaded (Linux and other non-macOS Unix)."""
+    return sys.platform != "darwin" and "fork" in multiprocessing.get_all_start_methods()
+
+
+def _run_part(index: int) -> object:
+    return _PARTS[index]()
+
+
+def run_parts(parts: Sequence[Callable[[], T]], jobs: int | None = None) -> list[T]:
+    """Call every part and return the results in order, up to `jobs` at a time (None: all cores).
+
+    An exception raised by a part is raised here, as it would be in a plain loop;
+    if a child dies (killed, out of memory) the parts are run here instead.
+    """
+    global _PARTS
+    workers = min(len(parts), local_cores() if jobs is None else max(1, jobs))
+    if workers < 2 or not can_fork():
+        return [part() for part in parts]
+    _PARTS = parts
+    try:
+        with warnings.catch_warnings():
+            # Python 3.12+ warns before forking a process with threads (here: the
+            # idle BLAS pool); the children only compute and return their result.
+            warnings.filterwarnings("ignore", category=DeprecationWarning, message=".*fork.*")
+            with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as pool:
+                return list(pool.map(_run_part, range(len(parts))))
+    except BrokenProcessPool:
+        return [part() for part in parts]
+    finally:
+        _PARTS = ()
