@@ -10,6 +10,7 @@ keys, so the two cannot drift apart.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import typing
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -55,12 +56,18 @@ class Record(Mapping):
         if missing or unknown:
             raise ValueError(f"{cls.__name__}: missing keys {sorted(missing)}, "
                              f"unknown keys {sorted(unknown)}")
-        hints = typing.get_type_hints(cls)
+        hints = _type_hints(cls)
         values = {}
         for key in cls.json_keys():
             attr = cls._renamed.get(key, key)
             values[attr] = _from_json(hints[attr], data[key])
         return cls(**values)
+
+
+@functools.cache
+def _type_hints(cls: type) -> dict[str, Any]:
+    """A record class's resolved field types, worked out once per class."""
+    return typing.get_type_hints(cls)
 
 
 def _as_json(value: Any) -> Any:

@@ -58,6 +58,8 @@ CHECK_BOOT = 12
 #: Spreads searched for the maximum-likelihood fit.
 SPREAD_GRID = np.concatenate([[0.0], np.geomspace(1e-3, 10.0, 80)])
 LEVEL_GRID = np.concatenate([[0.0], np.geomspace(1e-3, 1.0, 60)])
+#: Grid points x checks worked on at once in that search (a few MB).
+GRID_CELLS_PER_CHUNK = 200_000
 
 
 @dataclass(frozen=True)
@@ -120,14 +122,20 @@ def fit_calibration(drops: np.ndarray, residuals: np.ndarray, variances: np.ndar
     if d.size == 0 or settings == 0:
         return prior()
     v = np.maximum(v, 1e-24)
-    spread = SPREAD_GRID[:, None, None]
-    level_spread = LEVEL_GRID[None, :, None]
-    total = (v + (spread * d) ** 2 + (level_spread * excess * doubled) ** 2)  # (s, k, checks)
-    weights = 1.0 / total
-    denominator = (weights * d * d).sum(axis=-1)
-    lean = np.where(denominator > 0, (weights * r * d).sum(axis=-1) / np.maximum(denominator, 1e-300), 0.0)
-    misfit = r - lean[..., None] * d
-    loglik = -0.5 * (misfit ** 2 / total + np.log(total)).sum(axis=-1)
+    lean = np.empty((SPREAD_GRID.size, LEVEL_GRID.size))
+    loglik = np.empty_like(lean)
+    level_part = (LEVEL_GRID[:, None] * excess * doubled) ** 2               # (k, checks)
+    rows = max(1, GRID_CELLS_PER_CHUNK // max(1, LEVEL_GRID.size * d.size))
+    for start in range(0, SPREAD_GRID.size, rows):   # in chunks that stay in the cache
+        spread = SPREAD_GRID[start:start + rows, None, None]
+        total = v + (spread * d) ** 2 + level_part                          # (s, k, checks)
+        weights = 1.0 / total
+        denominator = (weights * d * d).sum(axis=-1)
+        chunk_lean = np.where(denominator > 0, (weights * r * d).sum(axis=-1)
+                              / np.maximum(denominator, 1e-300), 0.0)
+        misfit = r - chunk_lean[..., None] * d
+        lean[start:start + rows] = chunk_lean
+        loglik[start:start + rows] = -0.5 * (misfit ** 2 / total + np.log(total)).sum(axis=-1)
     i, j = np.unravel_index(int(np.argmax(loglik)), loglik.shape)
     spread_hat, level_hat, lean_hat = float(SPREAD_GRID[i]), float(LEVEL_GRID[j]), float(lean[i, j])
     # Settings of one grid share their rows and much of their shape, so they
