@@ -162,3 +162,27 @@ def test_a_parameter_at_its_bound_does_not_freeze_the_others():
                               bounds=(fam.lower, fam.upper), method="trf", x_scale="jac")
     assert cost[0] <= reference.cost * (1 + 1e-6)
     assert theta[0, 0] == pytest.approx(np.sum(w ** 2 * y) / np.sum(w ** 2), rel=0.02)
+
+
+def test_slow_valleys_are_followed_to_the_bottom():
+    # Fits from the benchmark grid that took fixed damping factors more than 200
+    # iterations (tests/data/slow_fits.json). Reference: scipy.optimize.least_squares
+    # (trf, same bounds) started from gridplan's answer finds no lower cost.
+    import json
+    from pathlib import Path
+
+    from scipy.optimize import least_squares
+    problems = json.loads((Path(__file__).parent / "data" / "slow_fits.json").read_text())["problems"]
+    assert {p["family"] for p in problems} == set(FAMILIES) - {"exp3"}
+    for p in problems:
+        fam = FAMILIES[p["family"]]
+        x, y, w = (np.array([p[key]], dtype=float) for key in ("x", "y", "w"))
+        lower, upper = np.array(p["lower"], dtype=float), np.array(fam.upper, dtype=float)
+        theta, cost = fit_batch(fam.evaluate, fam.jacobian, x, y, w, np.array([p["start"]]),
+                                lower[None, :], upper)
+
+        def residuals(t, x=x[0], y=y[0], w=w[0], fam=fam):
+            return np.where(w > 0, (fam.evaluate(x, t) - y) * w, 0.0)
+        polished = least_squares(residuals, np.clip(theta[0], lower, upper), bounds=(lower, upper),
+                                 method="trf", x_scale="jac", ftol=1e-12, xtol=1e-12, gtol=1e-12)
+        assert cost[0] <= polished.cost * (1 + 1e-4) + 1e-15, p["family"]

@@ -73,7 +73,7 @@ def test_an_optimistic_misspecified_family_is_caught_and_its_bands_widened():
         outcomes[calibrate] = (np.median(errors), np.mean(inside), grid.calibration)
     raw_error, raw_coverage, _ = outcomes[False]
     calibrated_error, calibrated_coverage, calibration = outcomes[True]
-    assert raw_error < -0.05 and raw_coverage <= 0.5          # over-confident without it
+    assert raw_error < -0.03 and raw_coverage <= 0.5          # over-confident without it
     assert calibration.lean_fitted > 0 and calibration.lean > 0
     assert "optimistic" in calibration.sentence()
     assert raw_error < calibrated_error < 0                     # the lean moves toward the truth

@@ -7,9 +7,11 @@ overhead than in arithmetic, so here they are stacked: problem k has sizes
 x[k], errors y[k] and weights w[k] (weight 0 marks a missing point), and one
 Levenberg-Marquardt iteration updates all of them with batched linear algebra
 (damping on the Jacobi-scaled normal equations, Nocedal & Wright, Numerical
-Optimization, 2nd ed., section 10.3). Bounds are kept by projection: a parameter at a bound
-whose gradient points outward is held fixed for that step, the others take
-the damped Gauss-Newton step, clipped to the box.
+Optimization, 2nd ed., section 10.3), the damping following each step's
+gain ratio, actual over predicted decrease (Nielsen's rule). Bounds are kept
+by projection: a parameter at a bound whose gradient points outward is held
+fixed for that step, the others take the damped Gauss-Newton step, clipped
+to the box.
 """
 
 from __future__ import annotations
@@ -20,9 +22,8 @@ import numpy as np
 MAX_ITERATIONS = 200
 #: Relative decrease of the cost below which a problem counts as converged.
 RELATIVE_TOLERANCE = 1e-10
-#: Damping at the start, and the factors applied after a failed / good step.
+#: Damping at the start (then set by each step's gain ratio, see fit_batch).
 START_DAMPING = 1e-3
-DAMPING_UP, DAMPING_DOWN = 4.0, 3.0
 #: Damping beyond which no step can lower the cost any more.
 MAX_DAMPING = 1e12
 #: Large stand-in for an infinite upper bound when clipping starting points.
@@ -59,6 +60,7 @@ def fit_batch(evaluate, jacobian, x: np.ndarray, y: np.ndarray, w: np.ndarray,
                     lower, np.minimum(upper, FINITE_CAP))
     cost = cost_of(evaluate, x, y, w, theta)
     damping = np.full(k_count, START_DAMPING)
+    growth = np.full(k_count, 2.0)
     active = np.isfinite(cost)
     eye = np.eye(p)
     for _ in range(max_iterations):
@@ -85,14 +87,21 @@ def fit_batch(evaluate, jacobian, x: np.ndarray, y: np.ndarray, w: np.ndarray,
         both_free = free[:, :, None] & free[:, None, :]
         system = np.where(both_free, scaled, 0.0) + (damping[idx, None, None] + pinned[:, :, None]) * eye
         rhs = np.where(free, -gradient / norm, 0.0)
-        step = _solve(system, rhs) / norm
+        scaled_step = _solve(system, rhs)
+        step = scaled_step / norm
+        predicted = 0.5 * np.sum(scaled_step * (damping[idx, None] * scaled_step + rhs), axis=1)
         candidate = np.clip(th + step, lo, hi)
         new_cost = cost_of(evaluate, xs, ys, ws, candidate)
         old_cost = cost[idx]
         better = new_cost < old_cost
         theta[idx[better]] = candidate[better]
         cost[idx[better]] = new_cost[better]
-        damping[idx] = np.where(better, damping[idx] / DAMPING_DOWN, damping[idx] * DAMPING_UP)
+        # Damping by the gain ratio (Nielsen's rule: Madsen, Nielsen & Tingleff 2004, eq. 3.14)
+        with np.errstate(all="ignore"):
+            gain = np.where(predicted > 0, (old_cost - new_cost) / predicted, 1.0)
+        shrink = np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(gain, 0.0, 1.0) - 1.0) ** 3)
+        damping[idx] = np.where(better, damping[idx] * shrink, damping[idx] * growth[idx])
+        growth[idx] = np.where(better, 2.0, growth[idx] * 2.0)
         settled = better & (old_cost - new_cost <= RELATIVE_TOLERANCE * old_cost + 1e-300)
         stuck = ~better & (damping[idx] > MAX_DAMPING)
         active[idx[settled | stuck]] = False
