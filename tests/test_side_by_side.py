@@ -105,3 +105,17 @@ def test_the_short_row_median_is_numpys():
             warnings.simplefilter("ignore", RuntimeWarning)
             expected = np.nanmedian(values, axis=-1)
         np.testing.assert_array_equal(curves._nanmedian_last(values), expected)
+
+
+def test_with_another_thread_running_the_parts_run_here():
+    # A forked child inherits the locks other threads hold, not the threads: never fork then.
+    import threading
+    release = threading.Event()
+    helper = threading.Thread(target=release.wait)
+    helper.start()
+    try:
+        assert not forked.can_fork()
+        assert {pid for pid in forked.run_parts([os.getpid, os.getpid], 2)} == {os.getpid()}
+    finally:
+        release.set()
+        helper.join()

@@ -4,7 +4,8 @@ The deciding and showing sides have work that splits into independent parts
 (batches of curve fits, figures of a report) whose inputs are large Python
 objects and whose set-up (imports) costs more than the work itself. A forked
 child starts with all of that already in memory, so only the results travel
-back (pickled). Where fork is not offered (Windows) or not safe (macOS), or
+back (pickled). Where fork is not offered (Windows) or not safe (macOS, or
+another Python thread is running and might hold a lock the child needs), or
 there is one core or one part, the parts run here, one after another: the
 answers are the same either way.
 """
@@ -14,6 +15,7 @@ from __future__ import annotations
 import multiprocessing
 import os
 import sys
+import threading
 import warnings
 from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
@@ -33,8 +35,9 @@ def local_cores() -> int:
 
 
 def can_fork() -> bool:
-    """Fork is offered and safe with the libraries loaded (Linux and other non-macOS Unix)."""
-    return sys.platform != "darwin" and "fork" in multiprocessing.get_all_start_methods()
+    """Fork is offered and safe here: not macOS, and no other Python thread that could hold a lock."""
+    return (sys.platform != "darwin" and "fork" in multiprocessing.get_all_start_methods()
+            and threading.active_count() == 1)
 
 
 def _run_part(index: int) -> object:
@@ -54,8 +57,8 @@ def run_parts(parts: Sequence[Callable[[], T]], jobs: int | None = None) -> list
     _PARTS = parts
     try:
         with warnings.catch_warnings():
-            # Python 3.12+ warns before forking a process with threads (here: the
-            # idle BLAS pool); the children only compute and return their result.
+            # Python 3.12+ warns before forking a process with any OS thread; here
+            # the only others are the BLAS pool's, which prepares itself for fork.
             warnings.filterwarnings("ignore", category=DeprecationWarning, message=".*fork.*")
             with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as pool:
                 return list(pool.map(_run_part, range(len(parts))))
