@@ -294,8 +294,7 @@ def advise(run_dir: str | Path, *, target: float | None = None, at: str | None =
 
 def _setting_label(run, ci: int, ri: int) -> str:
     """'CAPACITY,REG' of a setting of `run`, by its axis labels."""
-    capacity = [label for label, _ in run.axes.get("capacity", [])]
-    regularization = [label for label, _ in run.axes.get("regularization", [])]
+    capacity, regularization = run.axis_labels("capacity"), run.axis_labels("regularization")
     return f"{capacity[ci]},{regularization[ri]}"
 
 
@@ -328,8 +327,8 @@ def _advise_model(run, *, target: float | None, at: str | None, confidence: floa
     ok = cells[cells["status"] == "ok"]
     if ok.empty:
         raise GridplanError(f"{run_dir or 'the grid'} has no successful cells to advise on.")
-    capacity_labels = [label for label, _ in run.axes.get("capacity", [])]
-    regularization_labels = [label for label, _ in run.axes.get("regularization", [])]
+    capacity_labels = run.axis_labels("capacity")
+    regularization_labels = run.axis_labels("regularization")
 
     def labels(ci: int, ri: int) -> str:
         return f"{capacity_labels[ci]},{regularization_labels[ri]}"

@@ -40,7 +40,7 @@ from gridplan.showing.markup import (
     table,
     with_figures,
 )
-from gridplan.showing.text import left_with_unlimited_data, mean_meets_but_interval_not
+from gridplan.showing.text import fold_test_words, left_with_unlimited_data, mean_meets_but_interval_not
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.figure import Figure
@@ -307,15 +307,6 @@ def _job_section(inputs: ReportInputs, number: int) -> Markup:
         facts(pairs)])
 
 
-def _test_words(test: Mapping | None, confidence: float) -> str:
-    if not test:
-        return "too few folds to test"
-    return (f"{_num(test['mean'])}, {test['confidence']:.0%} interval "
-            f"{_band([test['low'], test['high']])}; t = {_num(test['t'], 3)} on {test['dof']} df, "
-            f"one-sided p = {_num(test['p_value'], 2)} (corrected variance factor "
-            f"{_num(test['factor'], 4)})")
-
-
 def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
     a = inputs.advice
     if a is None:
@@ -331,11 +322,11 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
                             f"{_count(op['size'])} training rows ({op['chosen']})"),
         ("Training error", f"{_num(d['train_error'])} (mean over {d['units']} folds)"),
         ("Validation error", f"{_num(d['validation_error'])} (target {_given(a['target'])})"),
-        ("Gap (validation minus training)", _test_words(d["gap_test"], a["confidence"])),
+        ("Gap (validation minus training)", fold_test_words(d["gap_test"])),
     ]
     if d.get("previous_size") is not None:
         rows.append((f"Drop per doubling ({_count(d['previous_size'])} → {_count(d['size'])} rows)",
-                     _test_words(d["drop_per_doubling"], a["confidence"])))
+                     fold_test_words(d["drop_per_doubling"])))
     if d.get("curve_drop_next_doubling") is not None:
         rows.append(("Fitted curve: drop over the next doubling", _num(d["curve_drop_next_doubling"])))
         rows.append(("This setting's asymptote", _level_band(

@@ -59,12 +59,15 @@ def render_summary(summary: dict) -> str:
     return "\n".join(out)
 
 
-def _test_words(test: dict | None, what: str) -> str:
+def fold_test_words(test: dict | None, what: str = "") -> str:
+    """A one-sided t-test over folds in words: mean, interval, t, df, p and variance factor."""
     if not test:
-        return f"{what}: too few folds to test"
-    return (f"{what} {number(test['mean'])}, {test['confidence']:.0%} interval {interval([test['low'], test['high']])}, "
-            f"t={number(test['t'], 3)} on {test['dof']} df, one-sided p={number(test['p_value'], 2)} "
-            f"(corrected variance factor {number(test['factor'], 4)})")
+        return f"{what}: too few folds to test" if what else "too few folds to test"
+    lead = f"{what} " if what else ""
+    return (f"{lead}{number(test['mean'])}, {test['confidence']:.0%} interval "
+            f"{interval([test['low'], test['high']])}; t = {number(test['t'], 3)} on {test['dof']} "
+            f"df, one-sided p = {number(test['p_value'], 2)} (corrected variance factor "
+            f"{number(test['factor'], 4)})")
 
 
 def left_with_unlimited_data(left: float) -> str:
@@ -116,11 +119,11 @@ def render_advice(advice: dict) -> str:
         f"  because {advice['verdict_reason']}",
         f"  training error {number(d['train_error'])}   validation error {number(d['validation_error'])}   "
         f"over {d['units']} folds",
-        f"  {_test_words(d['gap_test'], 'gap')}",
+        f"  {fold_test_words(d['gap_test'], 'gap')}",
     ]
     if d["previous_size"] is not None:
         what = f"drop per doubling ({d['previous_size']:,} -> {d['size']:,})"
-        lines.append(f"  {_test_words(d['drop_per_doubling'], what)}")
+        lines.append(f"  {fold_test_words(d['drop_per_doubling'], what)}")
     if d["curve_drop_next_doubling"] is not None:
         lines.append(f"  fitted curve: drop over the next doubling {number(d['curve_drop_next_doubling'])}, "
                      f"this setting's asymptote {number(d['setting_asymptote'])} "
