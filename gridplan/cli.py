@@ -49,15 +49,44 @@ def friendly(command: Callable) -> Callable:
     return wrapper
 
 
+class _Spinner:
+    """rich's status line on stderr, whose refresh thread can be stopped and started again."""
+
+    def __init__(self, message: str):
+        from rich.console import Console
+        self.status = Console(stderr=True).status(f"{message} ...", spinner="line")
+        self.threads: list = []
+
+    def start(self) -> None:
+        import threading
+        before = set(threading.enumerate())
+        self.status.start()
+        self.threads = [t for t in threading.enumerate() if t not in before]
+
+    def stop(self) -> None:
+        self.status.stop()
+        for thread in self.threads:     # ended before we fork, so no lock of its is held
+            thread.join()
+        self.threads = []
+
+
 @contextmanager
 def _busy(message: str):
-    """A spinner with the elapsed time on stderr while a deciding command works (terminals only)."""
+    """A spinner on stderr while a deciding command works (terminals only).
+
+    Its thread is stopped for the moments the work forks (gridplan.common.forked).
+    """
     if not sys.stderr.isatty():
         yield
         return
-    from rich.console import Console
-    with Console(stderr=True).status(f"{message} ...", spinner="line"):
-        yield
+    from gridplan.common.forked import paused_while_forking
+    spinner = _Spinner(message)
+    spinner.start()
+    try:
+        with paused_while_forking(spinner.stop, spinner.start):
+            yield
+    finally:
+        spinner.stop()
 
 
 def _describe(spec, run_dir: Path) -> str:

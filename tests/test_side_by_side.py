@@ -119,3 +119,32 @@ def test_with_another_thread_running_the_parts_run_here():
     finally:
         release.set()
         helper.join()
+
+
+@needs_fork
+def test_a_registered_thread_is_paused_for_the_fork_and_resumed():
+    # The CLI's terminal spinner: stopped (and joined) while the children are made.
+    import threading
+    log = []
+    state = {}
+
+    def start():
+        state["stop"] = threading.Event()
+        state["thread"] = threading.Thread(target=state["stop"].wait)
+        state["thread"].start()
+        log.append("resume")
+
+    def stop():
+        state["stop"].set()
+        state["thread"].join()
+        log.append("pause")
+
+    start()
+    log.clear()
+    try:
+        with forked.paused_while_forking(stop, start):
+            pids = forked.run_parts([os.getpid, os.getpid], 2)
+        assert os.getpid() not in pids                 # forked although a thread was running
+        assert log == ["pause", "resume"] and state["thread"].is_alive()
+    finally:
+        stop()

@@ -19,12 +19,15 @@ import threading
 import warnings
 from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
-from typing import Callable, Sequence, TypeVar
+from contextlib import contextmanager
+from typing import Callable, Iterator, Sequence, TypeVar
 
 T = TypeVar("T")
 
 #: The parts of the map now in progress; a forked child reads its part from here.
 _PARTS: Sequence[Callable[[], object]] = ()
+#: (pause, resume) of our own threads that must not run while this process forks.
+_PAUSABLE: list[tuple[Callable[[], None], Callable[[], None]]] = []
 
 
 def local_cores() -> int:
@@ -44,6 +47,42 @@ def _run_part(index: int) -> object:
     return _PARTS[index]()
 
 
+@contextmanager
+def paused_while_forking(pause: Callable[[], None], resume: Callable[[], None]) -> Iterator[None]:
+    """Inside, a thread of ours (a terminal spinner) is stopped by `pause` for each fork.
+
+    `pause` must return only once the thread has ended; `resume` starts it again.
+    """
+    entry = (pause, resume)
+    _PAUSABLE.append(entry)
+    try:
+        yield
+    finally:
+        _PAUSABLE.remove(entry)
+
+
+def _fork_workers(count: int, tasks: int) -> tuple[ProcessPoolExecutor, list] | None:
+    """A pool of `count` forked workers with every task handed out, or None where fork is unsafe.
+
+    Registered threads are paused while the children are made (a fork pool
+    makes all of them at the first task) and resumed at once.
+    """
+    for pause, _ in _PAUSABLE:
+        pause()
+    try:
+        if not can_fork():
+            return None
+        with warnings.catch_warnings():
+            # Python 3.12+ warns before forking a process with any OS thread; here
+            # the only others are the BLAS pool's, which prepares itself for fork.
+            warnings.filterwarnings("ignore", category=DeprecationWarning, message=".*fork.*")
+            pool = ProcessPoolExecutor(count, mp_context=multiprocessing.get_context("fork"))
+            return pool, [pool.submit(_run_part, index) for index in range(tasks)]
+    finally:
+        for _, resume in reversed(_PAUSABLE):
+            resume()
+
+
 def run_parts(parts: Sequence[Callable[[], T]], jobs: int | None = None) -> list[T]:
     """Call every part and return the results in order, up to `jobs` at a time (None: all cores).
 
@@ -52,16 +91,16 @@ def run_parts(parts: Sequence[Callable[[], T]], jobs: int | None = None) -> list
     """
     global _PARTS
     workers = min(len(parts), local_cores() if jobs is None else max(1, jobs))
-    if workers < 2 or not can_fork():
+    if workers < 2:
         return [part() for part in parts]
     _PARTS = parts
     try:
-        with warnings.catch_warnings():
-            # Python 3.12+ warns before forking a process with any OS thread; here
-            # the only others are the BLAS pool's, which prepares itself for fork.
-            warnings.filterwarnings("ignore", category=DeprecationWarning, message=".*fork.*")
-            with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as pool:
-                return list(pool.map(_run_part, range(len(parts))))
+        started = _fork_workers(workers, len(parts))
+        if started is None:
+            return [part() for part in parts]
+        pool, futures = started
+        with pool:
+            return [future.result() for future in futures]
     except BrokenProcessPool:
         return [part() for part in parts]
     finally:
