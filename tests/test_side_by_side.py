@@ -139,12 +139,14 @@ def test_a_registered_thread_is_paused_for_the_fork_and_resumed():
         state["thread"].join()
         log.append("pause")
 
+    foreign = threading.active_count() > 1     # threads earlier tests left (dask, joblib pools)
     start()
     log.clear()
     try:
         with forked.paused_while_forking(stop, start):
             pids = forked.run_parts([os.getpid, os.getpid], 2)
-        assert os.getpid() not in pids                 # forked although a thread was running
+        # forked although our thread was running, unless someone else's still runs
+        assert (os.getpid() in pids) == foreign
         assert log == ["pause", "resume"] and state["thread"].is_alive()
     finally:
         stop()
