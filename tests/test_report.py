@@ -230,13 +230,16 @@ def test_settings_table_has_one_row_per_measured_setting(report, grid):
     assert {(r[0], r[1]): r[6] for r in rows} == verdicts
 
 
-def test_figures_drawn_side_by_side_give_the_same_page(variant):
+def test_figures_drawn_side_by_side_give_the_same_page(variant, forking):
     # Figures are drawn on every core by default; one at a time is the reference.
     from gridplan.showing.gather import gather_inputs
     from gridplan.showing.report import report_html
     run_dir = variant[0].parent.parent       # the copy with a backtest and a failed fit
     inputs = gather_inputs(run_dir, n_boot=N_BOOT, seed=0)
-    one, two = report_html(inputs, jobs=1), report_html(inputs, jobs=2)
+    one = report_html(inputs, jobs=1)
+    assert forking == []
+    two = report_html(inputs, jobs=2)
+    assert forking == [True]                 # drawn in children
     assert one == two
     assert "gridplan-figure" not in one and one.count("<img") == 6     # five maps and curves, the backtest
 

@@ -65,11 +65,12 @@ def test_all_starts_in_one_batch_equal_one_batch_per_start():
         np.testing.assert_array_equal(cost, best_cost)
 
 
-@needs_fork
-def test_a_grid_fitted_on_two_cores_is_the_grid_fitted_on_one(known_grid, monkeypatch):
+def test_a_grid_fitted_on_two_cores_is_the_grid_fitted_on_one(known_grid, monkeypatch, forking):
     monkeypatch.setattr(curves, "MIN_PROBLEMS_PER_PART", 3)   # split even this small grid
     one = fit_grid(known_grid.cells, n_boot=30, jobs=1)
+    assert forking == []
     two = fit_grid(known_grid.cells, n_boot=30, jobs=2)
+    assert forking and all(forking)                          # really fitted in children
     assert sorted(one) == sorted(two) and len(one) == 8
     for key, fit in one.items():
         np.testing.assert_array_equal(fit.theta, two[key].theta)
