@@ -16,7 +16,7 @@ from gridplan.deciding.advisor import advise, parse_operating_point
 from gridplan.deciding.gridfit import fit_grid
 from gridplan.deciding.planner import ACTIONS
 from gridplan.measuring.store import FoldRow, Store
-from gridplan.showing.text import render_advice
+from gridplan.showing.text import render_advice, rising_step_words
 from tests.helpers import linear_data, quadratic_data, run_frame
 
 SIGMA = 0.5
@@ -310,19 +310,28 @@ def test_the_headline_says_what_to_do_what_it_costs_and_what_to_expect(quadratic
 def test_no_forecast_lies_below_the_stated_floor_and_rising_steps_say_why(quadratic):
     # common practice, no published source: the advice never contradicts its own floor
     run_dir, curves = quadratic
-    for target in (0.27, 0.3, 0.5):
-        advice = advise(run_dir, target=target, at="1,1e-06", curves=curves)
+    rising = 0
+    cases = [(0.27, "1,1e-06"), (0.3, "1,1e-06"), (0.5, "1,1e-06"),
+             (0.285, "1,1e-06"), (0.285, "2,1e-06")]    # the last two plan rising steps
+    for target, at in cases:
+        advice = advise(run_dir, target=target, at=at, curves=curves)
         floor = advice["noise_floor"]
         states = [s["to"] for s in advice["plan"]] + [a["to"] for a in advice["actions"] if a["to"]]
         for state in states:
             if not state["measured"]:
                 assert state["predicted_error"] >= floor - 1e-12
         text = render_advice(advice)
-        for step in advice["plan"]:
+        for number, step in enumerate(advice["plan"], 1):
             assert step["worse_on_the_way"] == (step["to"]["predicted_error"]
                                                > step["from"]["predicted_error"])
             if step["worse_on_the_way"]:
-                assert "the error rises on this step" in text
+                rising += 1
+                words = rising_step_words(step, last=number == len(advice["plan"]))
+                assert words in text
+                assert (("steps after it" in words) == (number < len(advice["plan"]))
+                        and ("whole interval lies at or below the target" in words)
+                        == (number == len(advice["plan"])))
+    assert rising >= 2, "the fixture is meant to plan rising steps, last and not last"
 
 
 def test_actions_tied_on_plan_cost_collapse_to_one_line(quadratic):
@@ -355,3 +364,18 @@ def test_a_report_after_advise_fits_no_curves(tmp_path, monkeypatch):
 
     monkeypatch.setattr(curvestore, "fit_grid", no_fitting)
     assert write_report(run_dir).is_file()
+
+
+def test_a_last_more_data_step_above_the_measured_mean_says_why():
+    # The benchmark grid's plan: the curve at 4,525 rows (0.0918) sits above the mean
+    # measured at 3,200 (0.0904), yet its whole interval is below the target 0.1.
+    step = {"action": "more-data", "predicted_error": 0.0918,
+            "from": {"measured": True, "size": 3200, "predicted_error": 0.0904},
+            "to": {"measured": False, "size": 4525, "predicted_error": 0.0918}}
+    assert rising_step_words(step, last=True) == (
+        "the curve fitted to every size runs 0.00140 above the mean measured at 3,200 rows, "
+        "but here the whole interval lies at or below the target")
+    step["action"] = "more-capacity"
+    assert rising_step_words(step, last=False) == (
+        "the error rises by 0.00140 on this step, from 0.0904: it is the cheapest way to the "
+        "steps after it, which end at the target")

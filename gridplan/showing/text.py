@@ -70,6 +70,20 @@ def fold_test_words(test: dict | None, what: str = "") -> str:
             f"{number(test['factor'], 4)})")
 
 
+def rising_step_words(step: dict, last: bool) -> str:
+    """Why a plan takes a step whose predicted error is above the one before it."""
+    before = step["from"]
+    rise = number(step["predicted_error"] - before["predicted_error"])
+    if step["action"] == "more-data" and before["measured"]:
+        why = (f"the curve fitted to every size runs {rise} above the mean measured at "
+               f"{before['size']:,} rows")
+    else:
+        why = f"the error rises by {rise} on this step, from {number(before['predicted_error'])}"
+    if last:
+        return f"{why}, but here the whole interval lies at or below the target"
+    return f"{why}: it is the cheapest way to the steps after it, which end at the target"
+
+
 def left_with_unlimited_data(left: float) -> str:
     """What the part of the excess left with unlimited data (asymptote minus target) means."""
     return ("bias + noise that more data cannot remove" if left > 0
@@ -171,9 +185,7 @@ def render_advice(advice: dict) -> str:
                              f"{number(step['predicted_error'])} {interval(to['interval'])}"
                              f"{' (measured)' if to['measured'] else ''}")
                 if step.get("worse_on_the_way"):
-                    lines.append(f"     the error rises on this step, from "
-                                 f"{number(step['from']['predicted_error'])}: it is the cheapest way "
-                                 f"to the steps after it, which end at the target")
+                    lines.append(f"     {rising_step_words(step, last=i == len(advice['plan']))}")
     else:
         lines.append(f"No plan reaches the target. Binding limit: {advice['binding_limit']}.")
         lines.append(f"  {advice['binding_detail']}")
