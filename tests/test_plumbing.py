@@ -58,3 +58,41 @@ def test_advice_lands_where_the_known_curve_meets_the_target(known_grid):
     assert known_grid.cells.groupby(["capacity", "regularization", "train_size"])[
         "validation_error"].mean().min() > 0.2
     assert FLOOR + BIAS / c < 0.2 < validation_error(c, r, float(known_grid.cells["train_size"].max()))
+
+
+def test_rows_needed_past_the_checked_horizon_are_told_as_beyond(known_grid):
+    # Closed form m* = b / (e* - a) of the known power law: a target that capacity 8
+    # without penalty reaches only at 20x the largest measured size.
+    from gridplan.deciding.curves import CHECKED_HORIZON
+    from gridplan.deciding.gridfit import curves_summary
+    from gridplan.showing.text import render_summary
+    fits = known_grid._fits()
+    largest = int(known_grid.cells["train_size"].max())
+    c = KNOWN_CAPACITIES[-1]
+    plateau, amplitude = FLOOR + BIAS / c, SPREAD * c
+    target = plateau + amplitude / (20 * largest)
+    summary = curves_summary(fits, target=target).to_dict()
+    index, row = next((i, s) for i, s in enumerate(summary["settings"])
+                      if s["capacity"] == "8" and s["regularization"] == "0")
+    assert row["horizon_size"] == int(CHECKED_HORIZON * largest)
+    assert row["samples_needed_point"] == pytest.approx(20 * largest, rel=1e-3)
+    line = render_summary(summary).splitlines()[3 + index]     # title, header, rule, rows
+    assert f"beyond {row['horizon_size']:,}" in line
+    assert "20x the largest measured size; forecasts are checked only up to 8x" in line
+    assert f"about {row['samples_needed_point']:,}" not in line
+
+
+def test_a_plan_past_the_checked_horizon_says_to_measure_first(known_grid):
+    # The cheapest plan ends far past the data, and the headline says so.
+    from gridplan.deciding.curves import CHECKED_HORIZON
+    largest = int(known_grid.cells["train_size"].max())
+    advice = known_grid.advise(target=0.168)      # met at 16x the data (the bands' shape error)
+    assert advice.reachable and advice.horizon_size == int(CHECKED_HORIZON * largest)
+    end = advice.plan[-1].to
+    assert end.size > advice.horizon_size
+    assert advice.headline.endswith(
+        f"; but {end.size:,} rows are {end.size / largest:.0f}x the largest measured size and "
+        f"forecasts are checked only to 8x, so label at most about "
+        f"{advice.horizon_size - largest:,} more rows first and run again.")
+    near = known_grid.advise(target=0.2)            # a plan inside the horizon: no such words
+    assert near.plan[-1].to.size <= near.horizon_size and "checked only" not in near.headline

@@ -213,6 +213,7 @@ class Advice(Record):
     costs: dict
     settings: list[dict]
     skipped: dict
+    horizon_size: int              # CHECKED_HORIZON x the largest measured size
     models: list[ModelOffer] = field(default_factory=list)
 
 
@@ -251,6 +252,7 @@ class SettingCurve(Record):
     reason: str
     midpoint_check: dict
     skipped_rows: int
+    horizon_size: int              # forecasts past it are beyond anything checked
 
 
 @dataclass(frozen=True)

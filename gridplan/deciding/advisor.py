@@ -21,7 +21,7 @@ from gridplan.common.errors import GridplanError
 from gridplan.common.jsonable import plain as _plain
 from gridplan.common.results import Advice
 from gridplan.common.wording import money, number
-from gridplan.deciding.curves import DEFAULT_MAX_SIZE
+from gridplan.deciding.curves import CHECKED_HORIZON, DEFAULT_MAX_SIZE
 from gridplan.deciding.diagnosis import (
     NoiseFloor,
     Plateau,
@@ -456,7 +456,7 @@ def _advise_model(run, *, target: float | None, at: str | None, confidence: floa
         "plateau_model": run.model_name if plateau else None,
         "calibration": curves.calibration.as_dict() if curves.calibration is not None else None,
         "reachable": reachable, "binding_limit": limit, "binding_detail": limit_detail,
-        "label_next_rows": next_rows,
+        "label_next_rows": next_rows, "horizon_size": int(CHECKED_HORIZON * size),
         "plan_cost": found[0] if found else None, "plan": plan, "actions": actions,
         "costs": {"per_sample": costs.per_sample, "capacity_step": costs.capacity_step,
                   "regularization_step": costs.regularization_step,
@@ -609,8 +609,15 @@ def headline(advice: dict) -> str:
         rows = f"label about {_about(end['size'] - op['size'])} more rows"
         words = f"{words} and {rows}" if words else rows[0].upper() + rows[1:]
     low, high = end["interval"]
-    return (f"{words}: expected {number(end['predicted_error'])} ({number(low)}-{number(high)}), "
-            f"cost {money(advice['plan_cost'])}.")
+    text = (f"{words}: expected {number(end['predicted_error'])} ({number(low)}-{number(high)}), "
+            f"cost {money(advice['plan_cost'])}")
+    horizon = advice["horizon_size"]
+    if end["size"] > horizon:
+        largest = horizon / CHECKED_HORIZON
+        text += (f"; but {end['size']:,} rows are {end['size'] / largest:.0f}x the largest "
+                 f"measured size and forecasts are checked only to {CHECKED_HORIZON:g}x, so label "
+                 f"at most about {_about(horizon - op['size'])} more rows first and run again")
+    return text + "."
 
 
 def _about(rows: int) -> str:

@@ -61,6 +61,10 @@ LEVEL_DOUBLINGS_CAP = 2.0
 MONOTONE_GRID = 256
 #: Whole sizes tried at once in each round of the samples-needed search (see _edge_reach).
 SEARCH_POINTS = 64
+#: Forecasts past this multiple of a curve's largest measured size lie beyond anything
+#: checked: the corpus backtests x4 (benchmarks/corpus.py), a run's own checks reach one
+#: to three sizes. Rows needed beyond it are told as "beyond", not as a number.
+CHECKED_HORIZON = 8.0
 #: Curves a part must hold before a fit is split over cores (fewer: forking costs more).
 MIN_PROBLEMS_PER_PART = 40
 

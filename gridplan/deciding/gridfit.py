@@ -15,6 +15,7 @@ from gridplan.common.results import CurvesSummary
 from gridplan.deciding.calibration import CHECK_BOOT, check_problems
 from gridplan.deciding.calibration import calibrate as calibrate_fits
 from gridplan.deciding.curves import (
+    CHECKED_HORIZON,
     DEFAULT_MAX_SIZE,
     WIDE_BAND_RATIO,
     CurveFit,
@@ -207,7 +208,7 @@ def _setting_summary(fit: CurveFit, target: float | None, confidence: float,
            "params": fit.params, "holdout_errors": fit.holdout_errors,
            "asymptote": fit.asymptote, "asymptote_low": floor_low, "asymptote_high": floor_high,
            "largest_size": int(largest), "error_at_largest": float(fit.validation_mean[-1]),
-           "reference_size": int(reference)}
+           "reference_size": int(reference), "horizon_size": int(CHECKED_HORIZON * largest)}
     for factor in (2, 4):
         low, high = fit.band(factor * reference, confidence)
         row[f"predicted_{factor}x"] = float(fit.predict(factor * reference))

@@ -534,6 +534,11 @@ def _needed_words(s: Mapping) -> str:
         return "–"
     if not s["reachable"]:
         return Markup(f"not reachable <span class=\"why\">({esc(s.get('reason', ''))})</span>")
+    horizon = s["horizon_size"]
+    if s["samples_needed"] > horizon:
+        times = horizon / s["largest_size"]
+        return Markup(f"beyond {esc(_count(horizon))} <span class=\"why\">({times:g}x the data, "
+                      f"as far as forecasts are checked)</span>")
     needed = _count(s["samples_needed"])
     low, high = s.get("samples_needed_low"), s.get("samples_needed_high")
     band = f" [{_count(low)}, {'more' if high is None else _count(high)}]" if low is not None else ""

@@ -22,14 +22,23 @@ def render_summary(summary: dict) -> str:
         else:
             forecast = (f"{number(s['predicted_2x'])} [{number(s['predicted_2x_low'])}, "
                         f"{number(s['predicted_2x_high'])}]")
-        if s["reachable"]:
-            central = s["samples_needed_point"] or s["samples_needed"]
+        horizon = s["horizon_size"]
+        central = s["samples_needed_point"] or s["samples_needed"]
+        if s["reachable"] and s["samples_needed"] <= horizon:
             samples = (f"about {_size(central)}; {_size(s['samples_needed'])} to be "
                        f"{conf:.0%} sure")
             if s["samples_needed"] <= s["largest_size"]:
                 notes.append("target already met at the measured sizes")
         elif s["reachable"] is None:
             samples = "-"
+        elif s["samples_needed_point"] is not None and s["samples_needed_point"] > horizon:
+            samples = f"beyond {_size(horizon)}"
+            notes.append(beyond_horizon_words(s["samples_needed_point"], horizon,
+                                              s["largest_size"]))
+        elif s["reachable"]:
+            samples = f"about {_size(central)}; beyond {_size(horizon)} to be {conf:.0%} sure"
+            notes.append(beyond_horizon_words(s["samples_needed"], horizon, s["largest_size"],
+                                              f"{conf:.0%} sure"))
         elif s["samples_needed_point"] is not None:
             samples = f"about {_size(s['samples_needed_point'])}; not at {conf:.0%}"
             notes.append(s["reason"])
@@ -68,6 +77,15 @@ def fold_test_words(test: dict | None, what: str = "") -> str:
             f"{interval([test['low'], test['high']])}; t = {number(test['t'], 3)} on {test['dof']} "
             f"df, one-sided p = {number(test['p_value'], 2)} (corrected variance factor "
             f"{number(test['factor'], 4)})")
+
+
+def beyond_horizon_words(rows: int, horizon: int, largest: int, what: str = "there") -> str:
+    """Why rows needed past the checked horizon are not given as a number."""
+    near = f"{rows:,}" if rows < 1e7 else f"{rows:.2g}"
+    times = f"{rows / largest:.0f}x" if rows < 1000 * largest else "over 1,000x"
+    return (f"the fitted curve gets {what} near {near} rows, {times} the largest measured "
+            f"size; forecasts are checked only up to {horizon / largest:g}x: measure at larger "
+            f"sizes before counting on it")
 
 
 def rising_step_words(step: dict, last: bool) -> str:
