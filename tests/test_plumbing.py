@@ -96,3 +96,22 @@ def test_a_plan_past_the_checked_horizon_says_to_measure_first(known_grid):
         f"{advice.horizon_size - largest:,} more rows first and run again.")
     near = known_grid.advise(target=0.2)            # a plan inside the horizon: no such words
     assert near.plan[-1].to.size <= near.horizon_size and "checked only" not in near.headline
+
+
+def test_a_plateau_held_at_the_floor_edge_is_told_as_a_bound(known_grid):
+    # The known plateau of capacity 8 is FLOOR + BIAS / 8 = 0.1; bounding the asymptote at
+    # 0.12 holds it there, and the table then gives a bound, not a band of width zero.
+    from gridplan.deciding.curves import fit_setting
+    from gridplan.deciding.gridfit import curves_summary
+    from gridplan.showing.text import render_summary
+    cells = known_grid.cells
+    one = cells[(cells.capacity_index == 3) & (cells.regularization_index == 0)]
+    table = one.pivot_table(index="train_size", columns=["repeat", "fold"], values="validation_error")
+    for bound, held in ((0.0, False), (0.12, True)):
+        fit = fit_setting(table.index.to_numpy(float), table.to_numpy(), n_boot=20,
+                          asymptote_min=bound)
+        assert fit.asymptote == pytest.approx(0.12 if held else FLOOR + BIAS / 8, rel=1e-6)
+        summary = curves_summary({(0, 0): fit}, target=0.2).to_dict()
+        assert summary["settings"][0]["plateau_at_floor"] is held
+        line = render_summary(summary).splitlines()[3]
+        assert (">= 0.120 (floor edge)" in line and "plateau not determined" in line) is held

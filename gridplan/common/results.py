@@ -253,6 +253,7 @@ class SettingCurve(Record):
     midpoint_check: dict
     skipped_rows: int
     horizon_size: int              # forecasts past it are beyond anything checked
+    plateau_at_floor: bool         # the plateau sits on the shared floor's lower edge: not its own
 
 
 @dataclass(frozen=True)

@@ -208,7 +208,9 @@ def _setting_summary(fit: CurveFit, target: float | None, confidence: float,
            "params": fit.params, "holdout_errors": fit.holdout_errors,
            "asymptote": fit.asymptote, "asymptote_low": floor_low, "asymptote_high": floor_high,
            "largest_size": int(largest), "error_at_largest": float(fit.validation_mean[-1]),
-           "reference_size": int(reference), "horizon_size": int(CHECKED_HORIZON * largest)}
+           "reference_size": int(reference), "horizon_size": int(CHECKED_HORIZON * largest),
+           "plateau_at_floor": bool(fit.asymptote_min > 0
+                                    and fit.asymptote <= fit.asymptote_min * (1 + 1e-9))}
     for factor in (2, 4):
         low, high = fit.band(factor * reference, confidence)
         row[f"predicted_{factor}x"] = float(fit.predict(factor * reference))

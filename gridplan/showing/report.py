@@ -569,7 +569,9 @@ def _settings_section(inputs: ReportInputs, number: int) -> Markup:
         table_rows.append([capacity[key[0]], regularization[key[1]], _count(size), _num(train),
                            _num(validation), _num(validation - train), verdicts.get(key, "–"),
                            "–" if s is None else s["family"],
-                           "–" if s is None else _level_band(
+                           "–" if s is None else
+                           f"≥ {_num(s['asymptote'])} (the shared floor's lower edge)"
+                           if s["plateau_at_floor"] else _level_band(
                                s["asymptote"], [s["asymptote_low"], s["asymptote_high"]], scale),
                            forecast, "–" if s is None else _needed_words(s)])
         classes.append("here" if key == here else None)

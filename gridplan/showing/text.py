@@ -45,14 +45,18 @@ def render_summary(summary: dict) -> str:
         else:
             samples = "not reachable"
             notes.append(s["reason"])
+        if s["plateau_at_floor"]:
+            notes.append("plateau not determined: the curve still falls at the largest size and is "
+                         "held at the shared floor's lower edge")
         check = s["midpoint_check"]
         if check.get("disagree"):
             notes.append("floor outside the training/validation bracket")
         if s["skipped_rows"]:
             notes.append(f"rows skipped: {s['skipped_rows']}")
-        lines.append([s["capacity"], s["regularization"], s["family"],
-                      f"{number(s['asymptote'])} [{number(s['asymptote_low'])}, "
-                      f"{number(s['asymptote_high'])}]",
+        plateau = (f">= {number(s['asymptote'])} (floor edge)" if s["plateau_at_floor"] else
+                   f"{number(s['asymptote'])} [{number(s['asymptote_low'])}, "
+                   f"{number(s['asymptote_high'])}]")
+        lines.append([s["capacity"], s["regularization"], s["family"], plateau,
                       f"{number(s['error_at_largest'])} @ {_size(s['largest_size'])}",
                       forecast, samples, "; ".join(notes)])
     widths = [max(len(str(row[i])) for row in [headers] + lines) for i in range(len(headers))]
