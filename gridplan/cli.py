@@ -31,8 +31,17 @@ def _show_warning(message, category, filename, lineno, file=None, line=None) -> 
     typer.echo(f"gridplan: warning: {message}", err=True)
 
 
-def friendly(command: Callable) -> Callable:
-    """Turn GridplanError into one sentence and exit 1; Ctrl-C into a resume hint."""
+def friendly(command: Callable | None = None, *, measures: bool = False) -> Callable:
+    """Turn GridplanError into one sentence and exit 1; Ctrl-C into one line and exit 130.
+
+    Commands that measure cells (`measures=True`) say how to resume; the others
+    write their files whole or not at all, so an interruption leaves nothing half done.
+    """
+    if command is None:
+        return functools.partial(friendly, measures=measures)
+    interrupted = ("interrupted; every finished cell is saved. Run the same command again to "
+                   "resume." if measures else "interrupted; no file was left half written.")
+
     @functools.wraps(command)
     def wrapper(*args, **kwargs):
         import warnings
@@ -44,8 +53,7 @@ def friendly(command: Callable) -> Callable:
         except GridplanError as exc:
             _fail(str(exc))
         except KeyboardInterrupt:
-            _fail("interrupted; every finished cell is saved. Run the same command again "
-                  "to resume.", code=130)
+            _fail(interrupted, code=130)
     return wrapper
 
 
@@ -147,7 +155,7 @@ CONFIRM_ABOVE_SECONDS = 30 * 60
 
 
 @app.command()
-@friendly
+@friendly(measures=True)
 def run(config: Path = typer.Argument(..., help="TOML config file."),
         out: Optional[Path] = typer.Option(None, "--out", help="Run folder (default outputs/<name>)."),
         jobs: Optional[int] = typer.Option(None, "--jobs", "-j", help="Worker processes (-1: all cores)."),
@@ -281,7 +289,7 @@ def export(run_dir: Path = typer.Argument(..., help="Run folder."),
 
 
 @app.command()
-@friendly
+@friendly(measures=True)
 def demo(out: Path = typer.Option(Path("outputs/demo"), "--out", help="Folder for data, config and run."),
          jobs: Optional[int] = typer.Option(None, "--jobs", "-j"),
          quiet: bool = typer.Option(False, "--quiet", "-q")):
@@ -458,7 +466,7 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder."),
 
 
 @app.command()
-@friendly
+@friendly(measures=True)
 def backtest(config: Path = typer.Argument(..., help="TOML config file."),
              fraction: float = typer.Option(0.25, "--fraction", help="Share of the training fold the curves may see."),
              out: Optional[Path] = typer.Option(None, "--out", help="Run folder (default outputs/<name>-backtest)."),

@@ -242,3 +242,19 @@ def test_every_command_and_function_uses_one_bootstrap_default():
     for name in ("curves", "advise", "report", "backtest"):
         option = inspect.signature(commands[name]).parameters["boot"].default
         assert isinstance(option, typer.models.OptionInfo) and option.default == DEFAULT_BOOT, name
+
+
+def test_ctrl_c_in_a_deciding_command_says_nothing_was_left_half_done(tmp_path, monkeypatch):
+    # Only measuring commands have cells to resume; the others write whole files or none.
+    from gridplan.deciding import advisor
+    config = _small_config(tmp_path)
+    assert runner.invoke(app, ["run", str(config), "--out", str(tmp_path / "r"), "--yes",
+                               "-j", "1"]).exit_code == 0
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+    monkeypatch.setattr(advisor, "advise", interrupted)
+    result = runner.invoke(app, ["advise", str(tmp_path / "r")])
+    assert result.exit_code == 130
+    assert "interrupted; no file was left half written." in result.output
+    assert "resume" not in result.output

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import shutil
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -299,3 +300,19 @@ def test_bad_output_paths_raise_one_sentence(grid, tmp_path):
     blocker.write_text("not a folder")
     with pytest.raises(GridplanError, match="Cannot write"):
         figures.save_figure(figure, blocker / "map.png")
+
+
+def test_an_interrupted_save_leaves_the_old_picture_and_no_half_file(grid, tmp_path, monkeypatch):
+    run, _ = grid
+    figure = figures.heatmap_figure(run)
+    path = figures.save_figure(figure, tmp_path / "map.png", dpi=40)
+    before = path.read_bytes()
+
+    def half_then_stop(target, **kwargs):
+        Path(target).write_bytes(b"\x89PNG half")
+        raise KeyboardInterrupt
+    monkeypatch.setattr(figure, "savefig", half_then_stop)
+    with pytest.raises(KeyboardInterrupt):
+        figures.save_figure(figure, path)
+    assert path.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["map.png"]

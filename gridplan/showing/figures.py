@@ -833,21 +833,37 @@ def _svg_settings():
 
 
 def save_figure(figure: "Figure", path: str | Path, dpi: int = PNG_DPI) -> Path:
-    """Write a figure as PNG or SVG, chosen by the file extension; returns the path."""
+    """Write a figure as PNG or SVG, chosen by the file extension; returns the path.
+
+    The picture goes to a temporary file beside `path` that then replaces it,
+    so a failed or interrupted save leaves no half-written file.
+    """
+    import os
+    import tempfile
     path = Path(path)
     kind = path.suffix.lower().lstrip(".")
     if kind not in FIGURE_FORMATS:
         raise GridplanError(f"Cannot draw to {str(path)!r}: choose a file name ending in .png or .svg.")
+    temporary = None
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
+        handle, temporary = tempfile.mkstemp(prefix=f".{path.stem}-", suffix=path.suffix,
+                                             dir=path.parent)
+        os.close(handle)
         if kind == "svg":
             with _svg_settings():
-                figure.savefig(path, format="svg", metadata={"Date": None})
+                figure.savefig(temporary, format="svg", metadata={"Date": None})
         else:
-            figure.savefig(path, format="png", dpi=dpi)
+            figure.savefig(temporary, format="png", dpi=dpi)
+        os.chmod(temporary, 0o644)
+        os.replace(temporary, path)
+        temporary = None
     except OSError as exc:
         reason = exc.strerror or str(exc)
         raise GridplanError(f"Cannot write {path}: {reason}.") from None
+    finally:
+        if temporary is not None and os.path.exists(temporary):
+            os.unlink(temporary)
     return path
 
 
