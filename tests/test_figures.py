@@ -316,3 +316,10 @@ def test_an_interrupted_save_leaves_the_old_picture_and_no_half_file(grid, tmp_p
         figures.save_figure(figure, path)
     assert path.read_bytes() == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["map.png"]
+
+
+def test_regularisation_labels_in_cells_are_shortened_only_where_they_stay_apart():
+    assert figures._compact_labels(["1e-06", "0.0811131", "0.53367", "1000"]) == [
+        "1e-06", "0.0811", "0.534", "1e+03"]
+    assert figures._compact_labels(["0.10001", "0.10002"]) == ["0.10001", "0.10002"]
+    assert figures._compact_labels(["none", "l2"]) == ["none", "l2"]

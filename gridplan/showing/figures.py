@@ -233,6 +233,16 @@ def _value_text(value: float) -> str:
     return f"{value:.3g}"
 
 
+def _compact_labels(labels: list[str]) -> list[str]:
+    """Numeric labels to three significant figures, so they fit in a cell, where that keeps
+    them apart; otherwise the labels as they are."""
+    try:
+        compact = [f"{float(label):.3g}" for label in labels]
+    except ValueError:
+        return list(labels)
+    return compact if len(set(compact)) == len(set(labels)) else list(labels)
+
+
 def heatmap_data(run: "Run", show: str = "validation", axis: str = "capacity",
                  capacity: str | int | None = None) -> HeatmapData:
     """Mean errors on a (capacity or regularisation) x training-size grid.
@@ -276,12 +286,13 @@ def heatmap_data(run: "Run", show: str = "validation", axis: str = "capacity",
         counts[i, j] = int(row.folds)
     annotations = np.full(shape, "", dtype=object)
     short = _short_param(run, "regularization")
+    in_cells = _compact_labels(regularization_labels)
     for (i, j), value in np.ndenumerate(values):
         if not np.isfinite(value):
             continue
         text = _value_text(value)
         if axis == "capacity" and len(regularization_labels) > 1:
-            text += f"\n{short}={regularization_labels[regularization[i, j]]}"
+            text += f"\n{short}={in_cells[regularization[i, j]]}"
         annotations[i, j] = text
     return HeatmapData(show=show, axis=axis, values=values, validation=validation,
                        annotations=annotations, row_labels=row_labels, sizes=sizes,
