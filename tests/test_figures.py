@@ -225,7 +225,7 @@ def test_curve_lines_are_the_fold_means_and_the_forecast_is_dashed_beyond_the_da
     assert x.min() == pytest.approx(160) and x.max() == pytest.approx(4 * 160)
     fit = fits[(1, 1)]
     np.testing.assert_allclose(forecast.get_ydata(), fit.predict(x))
-    assert drawn["noise-floor"].get_ydata()[0] == pytest.approx(fit.asymptote)
+    assert drawn["plateau"].get_ydata()[0] == pytest.approx(fit.asymptote)
     assert drawn["target"].get_ydata()[0] == pytest.approx(TARGET)
     assert ax.get_xscale() == "log"
     assert ax.get_ylabel() == "mean squared error"

@@ -680,8 +680,8 @@ def _draw_curves(ax: "Axes", points: CurvePoints, fit: "CurveFit | None", target
         floor_low, floor_high = fit.asymptote_band(confidence)
         scale = float(np.nanmax(points.validation_mean))
         floor_text = ", ".join(_level_text(v, scale) for v in (floor_low, floor_high))
-        ax.axhline(fit.asymptote, color=FLOOR_COLOUR, linestyle=":", linewidth=1.5, gid="noise-floor",
-                   label=f"noise floor estimate {_level_text(fit.asymptote, scale)} [{floor_text}]")
+        ax.axhline(fit.asymptote, color=FLOOR_COLOUR, linestyle=":", linewidth=1.5, gid="plateau",
+                   label=f"plateau of this setting {_level_text(fit.asymptote, scale)} [{floor_text}]")
         largest = FORECAST_FACTOR * start
     else:
         notes.append("no curve fitted, so no forecast")
@@ -831,7 +831,7 @@ def _legend_entries(ax: "Axes", generic: bool) -> tuple[list, list[str]]:
     """One panel's legend entries, with setting-specific numbers dropped for a shared legend."""
     handles, labels = ax.get_legend_handles_labels()
     if generic:
-        labels = ["noise floor estimate (per panel)" if label.startswith("noise floor") else
+        labels = ["plateau of each setting" if label.startswith("plateau of this setting") else
                   "fitted curve" if label.startswith("fitted curve") else label for label in labels]
     return handles, labels
 

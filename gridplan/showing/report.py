@@ -517,7 +517,7 @@ def _curves_section(inputs: ReportInputs, number: int) -> Markup:
     where = _setting_words(run, run.axis_labels("capacity")[key[0]], run.axis_labels("regularization")[key[1]])
     body = [para(f"Solid lines are measured means with the fold range shaded; the dashed line is the "
                f"fitted curve carried beyond the data with its {inputs.confidence:.0%} band (hatched). "
-               f"The dotted line is that setting's estimated floor, the dash-dot line the target.")]
+               f"The dotted line is that setting's plateau (its asymptote: noise plus its own bias), the dash-dot line the target.")]
     body.append(drawn(lambda: figures.curve_figure(run, fits, key, target=inputs.target,
                                                   confidence=inputs.confidence),
                        f"Learning curves at {where}",
