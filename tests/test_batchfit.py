@@ -115,6 +115,7 @@ def test_a_second_advise_fits_nothing_and_gives_the_same_advice(tmp_path, monkey
     for key, fit in fresh.items():       # JSON keeps every float exactly
         np.testing.assert_array_equal(cached[key].boot_theta, fit.boot_theta)
         assert cached[key].band(1000.0) == fit.band(1000.0)
+        assert cached[key].own_check_error == fit.own_check_error
     assert cached.floor == fresh.floor
 
 

@@ -124,3 +124,23 @@ def test_corpus_members_backtest_within_their_measured_figures(tmp_path, name, w
     assert result["calibration"]["spread"] > 0
     assert np.median([r["rel_error"] for r in rows]) <= worst_median
     assert np.mean([r["inside_band"] for r in rows]) >= 0.6
+
+
+def test_a_misspecified_curve_misses_its_own_larger_sizes_and_says_by_how_much():
+    # The exponential approach again: the power laws' refits on the smaller sizes miss the
+    # larger ones, and each setting's own check error is that miss (reference: the median
+    # |forecast / measured - 1| of the refits, recomputed here from the same refits).
+    def truth(m):
+        return 0.3 + 0.5 * np.exp(-m / 400.0)
+    cells, _ = _cells_from(truth, np.array([50, 80, 130, 200, 320, 500, 800, 1280]), 6, seed=2)
+    grid = fit_grid(cells, share_floor=False)
+    errors = np.array([fit.own_check_error for fit in grid.values()])
+    assert np.all(errors > 0.003) and np.median(errors) < 0.2
+    from gridplan.deciding.calibration import check_problems, own_check_error
+    from gridplan.deciding.curves import fit_problems
+    from gridplan.deciding.gridfit import _key, _settings_data
+    data = _settings_data(cells, 0)[0]
+    checks = check_problems(data)
+    refits = fit_problems([p for p, _ in checks], ("pow3", "pow4", "mmf4", "wbl4"), 12)
+    again = own_check_error(list(zip(refits, [h for _, h in checks])))
+    assert again == pytest.approx(grid[_key(data)].own_check_error, rel=1e-12)

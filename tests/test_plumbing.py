@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import pytest
 
+from gridplan.showing.text import render_advice
 from tests.conftest import KNOWN_CAPACITIES, KNOWN_PENALTIES
 from tests.known import BIAS, FLOOR, SPREAD, training_error, validation_error
 
@@ -115,3 +116,22 @@ def test_a_plateau_held_at_the_floor_edge_is_told_as_a_bound(known_grid):
         assert summary["settings"][0]["plateau_at_floor"] is held
         line = render_summary(summary).splitlines()[3]
         assert (">= 0.120 (floor edge)" in line and "plateau not determined" in line) is held
+
+
+def test_each_curve_carries_its_own_check_and_a_rough_plan_says_so(known_grid, monkeypatch):
+    # The known curves are exact power laws, so refits on smaller sizes forecast the larger
+    # ones exactly (Cortes et al. 1994 form, exponent 1): every own check is about zero.
+    from gridplan.deciding import advisor, calibration
+    fits = known_grid._fits()
+    errors = [fit.own_check_error for fit in fits.values()]
+    assert all(e is not None and e < 1e-4 for e in errors), errors
+    calm = known_grid.advise(target=0.2)
+    assert calm.plan_end_check_error is not None and calm.plan_end_check_error < 1e-4
+    assert "rough forecast" not in calm.headline
+    assert "forecast its larger ones 0% off" in render_advice(calm.to_dict())
+    monkeypatch.setattr(advisor, "OWN_CHECK_CAUTION", -1.0)      # every curve counts as rough
+    monkeypatch.setattr(calibration, "OWN_CHECK_CAUTION", -1.0)
+    rough = known_grid.advise(target=0.2)
+    assert (f"; a rough forecast: refitted on its smaller sizes, this setting's curve forecast "
+            f"its larger ones {rough.plan_end_check_error:.0%} off") in rough.headline
+    assert ": a rough forecast" in render_advice(rough.to_dict())

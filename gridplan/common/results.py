@@ -214,6 +214,7 @@ class Advice(Record):
     settings: list[dict]
     skipped: dict
     horizon_size: int              # CHECKED_HORIZON x the largest measured size
+    plan_end_check_error: float | None   # own check of the plan's last setting, if forecast
     models: list[ModelOffer] = field(default_factory=list)
 
 
@@ -254,6 +255,7 @@ class SettingCurve(Record):
     skipped_rows: int
     horizon_size: int              # forecasts past it are beyond anything checked
     plateau_at_floor: bool         # the plateau sits on the shared floor's lower edge: not its own
+    own_check_error: float | None  # its refits on smaller sizes vs its larger ones, median |rel|
 
 
 @dataclass(frozen=True)

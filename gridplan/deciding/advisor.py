@@ -21,6 +21,7 @@ from gridplan.common.errors import GridplanError
 from gridplan.common.jsonable import plain as _plain
 from gridplan.common.results import Advice
 from gridplan.common.wording import money, number
+from gridplan.deciding.calibration import OWN_CHECK_CAUTION
 from gridplan.deciding.curves import CHECKED_HORIZON, DEFAULT_MAX_SIZE
 from gridplan.deciding.diagnosis import (
     NoiseFloor,
@@ -397,7 +398,7 @@ def _advise_model(run, *, target: float | None, at: str | None, confidence: floa
                 "interval": [f.low, f.high], "error_at_confidence": f.predicted,
                 "measured": f.measured}
 
-    plan = []
+    plan, end_check = [], None
     if found is not None:
         cumulative, current = 0.0, start
         for edge in found[1]:
@@ -407,6 +408,9 @@ def _advise_model(run, *, target: float | None, at: str | None, confidence: floa
                          "predicted_error": after, "worse_on_the_way": bool(after > before),
                          "from": describe(current), "to": describe(edge.target)})
             current = edge.target
+        end_fit = curves.get((current.capacity_index, current.regularization_index))
+        if end_fit is not None and not states.forecasts[current].measured:
+            end_check = end_fit.own_check_error
 
     actions = []
     for entry in rank_first_moves(states, start, distance):
@@ -457,6 +461,7 @@ def _advise_model(run, *, target: float | None, at: str | None, confidence: floa
         "calibration": curves.calibration.as_dict() if curves.calibration is not None else None,
         "reachable": reachable, "binding_limit": limit, "binding_detail": limit_detail,
         "label_next_rows": next_rows, "horizon_size": int(CHECKED_HORIZON * size),
+        "plan_end_check_error": end_check,
         "plan_cost": found[0] if found else None, "plan": plan, "actions": actions,
         "costs": {"per_sample": costs.per_sample, "capacity_step": costs.capacity_step,
                   "regularization_step": costs.regularization_step,
@@ -543,7 +548,9 @@ def _with_models(each: list[dict], here: int, switch_cost: float | None) -> dict
             for step in other["plan"]:
                 plan.append(dict(step, cumulative_cost=step["cumulative_cost"] + switch_cost))
             advice.update(plan=plan, plan_cost=total, reachable=True, binding_limit=None,
-                          binding_detail=None, label_next_rows=None)
+                          binding_detail=None, label_next_rows=None,
+                          plan_end_check_error=other["plan_end_check_error"] if other["plan"]
+                          else None)
     advice["headline"] = headline(advice)
     return advice
 
@@ -611,6 +618,10 @@ def headline(advice: dict) -> str:
     low, high = end["interval"]
     text = (f"{words}: expected {number(end['predicted_error'])} ({number(low)}-{number(high)}), "
             f"cost {money(advice['plan_cost'])}")
+    rough = advice.get("plan_end_check_error")
+    if rough is not None and rough > OWN_CHECK_CAUTION:
+        text += (f"; a rough forecast: refitted on its smaller sizes, this setting's curve "
+                 f"forecast its larger ones {rough:.0%} off")
     horizon = advice["horizon_size"]
     if end["size"] > horizon:
         largest = horizon / CHECKED_HORIZON

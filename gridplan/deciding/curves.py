@@ -177,6 +177,10 @@ class CurveFit:
     #: LEVEL_DOUBLINGS_CAP) is a second shape error, which stays when a curve is
     #: forecast flat but keeps falling.
     level_spread: float = 0.0
+    #: Median |relative error| with which this setting's own refits on its smaller sizes
+    #: forecast its larger ones (None: too few sizes to check). On the corpus, settings
+    #: whose own check missed by more also missed by more at x4 (Spearman 0.41).
+    own_check_error: float | None = None
     _tables: dict = field(default_factory=dict, repr=False, compare=False)
 
     @property

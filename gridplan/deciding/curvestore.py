@@ -112,6 +112,7 @@ def fit_to_json(fit: CurveFit) -> dict:
                holdout_errors=fit.holdout_errors, asymptote_min=fit.asymptote_min,
                n_repeats=fit.n_repeats, drop_lean=fit.drop_lean,
                drop_spread=fit.drop_spread, level_spread=fit.level_spread,
+               own_check_error=fit.own_check_error,
                train_mean=None if fit.train_mean is None else np.asarray(fit.train_mean).tolist(),
                setting=None if fit.setting is None else vars(fit.setting))
     return out
@@ -125,7 +126,7 @@ def fit_from_json(data: dict) -> CurveFit:
         inflation=float(data["inflation"]), holdout_errors=dict(data["holdout_errors"]),
         asymptote_min=float(data["asymptote_min"]), n_repeats=int(data["n_repeats"]),
         drop_lean=float(data["drop_lean"]), drop_spread=float(data["drop_spread"]),
-        level_spread=float(data["level_spread"]),
+        level_spread=float(data["level_spread"]), own_check_error=data.get("own_check_error"),
         train_mean=None if data["train_mean"] is None else np.array(data["train_mean"], dtype=float),
         setting=None if data["setting"] is None else SettingInfo(**data["setting"]), **arrays)
 

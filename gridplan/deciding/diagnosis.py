@@ -146,6 +146,7 @@ class SettingDiagnosis:
     reason: str
     failed_rows: int = 0
     units: int = 0
+    own_check_error: float | None = None   # the curve's own check (CurveFit.own_check_error)
 
     def as_dict(self) -> dict:
         return _plain(asdict(self))
@@ -262,7 +263,8 @@ def diagnose_setting(rows: pd.DataFrame, fit: CurveFit | None, *, target: float,
         noise_floor=noise_floor, target=target, bias_share=bias_share,
         variance_share=variance_share, **split_excess(validation_error, target, fit, confidence),
         flat=flat, verdict=verdict, reason=reason,
-        failed_rows=int((rows["status"] != "ok").sum()), units=int(len(valid)))
+        failed_rows=int((rows["status"] != "ok").sum()), units=int(len(valid)),
+        own_check_error=fit.own_check_error if fit is not None else None)
 
 
 # --- the grid's noise floor ---------------------------------------------------------------

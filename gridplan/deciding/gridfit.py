@@ -189,7 +189,7 @@ def fit_grid(cells: pd.DataFrame, *, families: Iterable[str] = DEFAULT_FAMILIES,
                 refits[i] = setting_refits
     if calibrate and grid:
         grid.calibration = calibrate_fits(
-            grid, [refits[i] for i, data in enumerate(settings) if _key(data) in grid])
+            grid, {_key(data): refits[i] for i, data in enumerate(settings) if _key(data) in grid})
     return grid
 
 
@@ -210,7 +210,8 @@ def _setting_summary(fit: CurveFit, target: float | None, confidence: float,
            "largest_size": int(largest), "error_at_largest": float(fit.validation_mean[-1]),
            "reference_size": int(reference), "horizon_size": int(CHECKED_HORIZON * largest),
            "plateau_at_floor": bool(fit.asymptote_min > 0
-                                    and fit.asymptote <= fit.asymptote_min * (1 + 1e-9))}
+                                    and fit.asymptote <= fit.asymptote_min * (1 + 1e-9)),
+           "own_check_error": fit.own_check_error}
     for factor in (2, 4):
         low, high = fit.band(factor * reference, confidence)
         row[f"predicted_{factor}x"] = float(fit.predict(factor * reference))

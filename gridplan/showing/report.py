@@ -40,7 +40,12 @@ from gridplan.showing.markup import (
     table,
     with_figures,
 )
-from gridplan.showing.text import fold_test_words, left_with_unlimited_data, mean_meets_but_interval_not
+from gridplan.showing.text import (
+    fold_test_words,
+    left_with_unlimited_data,
+    mean_meets_but_interval_not,
+    own_check_words,
+)
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from matplotlib.figure import Figure
@@ -331,6 +336,8 @@ def _diagnosis_section(inputs: ReportInputs, number: int) -> Markup:
         rows.append(("Fitted curve: drop over the next doubling", _num(d["curve_drop_next_doubling"])))
         rows.append(("This setting's asymptote", _level_band(
             d["setting_asymptote"], d["setting_asymptote_band"], abs(d["validation_error"] or 1.0))))
+        if d.get("own_check_error") is not None:
+            rows.append(("Its own extrapolation check", own_check_words(d["own_check_error"])))
     scale = abs(d["validation_error"] or 1.0)
     several = len(a.get("models") or []) > 1
     if a["noise_floor"] is not None:

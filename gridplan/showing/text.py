@@ -45,6 +45,8 @@ def render_summary(summary: dict) -> str:
         else:
             samples = "not reachable"
             notes.append(s["reason"])
+        if s["own_check_error"] is not None and _rough(s["own_check_error"]):
+            notes.append(own_check_words(s["own_check_error"]))
         if s["plateau_at_floor"]:
             notes.append("plateau not determined: the curve still falls at the largest size and is "
                          "held at the shared floor's lower edge")
@@ -81,6 +83,17 @@ def fold_test_words(test: dict | None, what: str = "") -> str:
             f"{interval([test['low'], test['high']])}; t = {number(test['t'], 3)} on {test['dof']} "
             f"df, one-sided p = {number(test['p_value'], 2)} (corrected variance factor "
             f"{number(test['factor'], 4)})")
+
+
+def _rough(error: float) -> bool:
+    from gridplan.deciding.calibration import OWN_CHECK_CAUTION
+    return error > OWN_CHECK_CAUTION
+
+
+def own_check_words(error: float) -> str:
+    """What a setting's own extrapolation check found, with a caution when it missed widely."""
+    text = f"refitted on its smaller sizes, this curve forecast its larger ones {error:.0%} off"
+    return text + (": a rough forecast" if _rough(error) else "")
 
 
 def beyond_horizon_words(rows: int, horizon: int, largest: int, what: str = "there") -> str:
@@ -161,9 +174,11 @@ def render_advice(advice: dict) -> str:
         what = f"drop per doubling ({d['previous_size']:,} -> {d['size']:,})"
         lines.append(f"  {fold_test_words(d['drop_per_doubling'], what)}")
     if d["curve_drop_next_doubling"] is not None:
+        own = d.get("own_check_error")
         lines.append(f"  fitted curve: drop over the next doubling {number(d['curve_drop_next_doubling'])}, "
                      f"this setting's asymptote {number(d['setting_asymptote'])} "
-                     f"{interval(d['setting_asymptote_band'])}")
+                     f"{interval(d['setting_asymptote_band'])}"
+                     + ("" if own is None else f"; {own_check_words(own)}"))
     if advice["noise_floor"] is not None:
         source = (f"model {advice['noise_floor_model']} setting" if several else "setting")
         lines.append(f"  noise floor {number(advice['noise_floor'])} {interval(advice['noise_floor_band'])}"
