@@ -218,6 +218,21 @@ def measurement_noise(run_dir: Path, full_size: int) -> float:
     return float(np.median(noise)) if noise else float("nan")
 
 
+def own_check_line(rows: list[dict]) -> str:
+    """How well each setting's own check (refits on its smaller sizes) foretells its x4 error."""
+    from scipy.stats import spearmanr
+    pairs = np.array([(r["own_check_error"], r["rel_error"]) for r in rows
+                      if r.get("own_check_error") is not None and r["rel_error"] is not None])
+    if len(pairs) < 3:
+        return "own checks: too few settings"
+    own, x4 = pairs.T
+    cut = float(np.quantile(own, 0.75))
+    return (f"own checks vs x4 error over {len(pairs)} settings: Spearman "
+            f"{spearmanr(own, x4).statistic:.2f}; own check above its top-quartile edge "
+            f"{cut:.1%}: x4 median {np.median(x4[own > cut]):.1%}, the rest "
+            f"{np.median(x4[own <= cut]):.1%}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--only", nargs="*", help="member names to run")
@@ -256,6 +271,7 @@ def main() -> None:
     print(f"pooled: {len(pooled)} settings, median |rel err| {np.median(rel):.1%}, "
           f"in 90% band {coverage:.0%} (lowest member {worst:.0%}), "
           f"largest member median {max(t['median_rel_error'] for t in table):.1%}")
+    print(own_check_line(pooled))
     if args.json:
         args.json.write_text(json.dumps({"members": table, "rows": pooled}, indent=1))
 

@@ -82,7 +82,8 @@ def backtest(config: Config, *, fraction: float = 0.25, out: str | Path | None =
                 "high": float(high), "measured": truth,
                 "abs_error": abs(predicted - truth),
                 "rel_error": abs(predicted - truth) / truth if truth > 0 else None,
-                "inside_band": bool(low <= truth <= high)})
+                "inside_band": bool(low <= truth <= high),
+                "own_check_error": fit.own_check_error})
         unfitted += [dict(u, model=name) for u in fits.unfitted]
         calibrations[name] = fits.calibration.as_dict() if fits.calibration is not None else None
     if not rows:

@@ -291,6 +291,7 @@ class BacktestRow(Record):
     abs_error: float
     rel_error: float | None
     inside_band: bool
+    own_check_error: float | None = None   # the fit's own check on its smaller sizes
 
 
 @dataclass(frozen=True)
