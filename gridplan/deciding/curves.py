@@ -317,9 +317,13 @@ class CurveFit:
         return low, high
 
     def asymptote_band(self, confidence: float = 0.9) -> tuple[float, float]:
-        """Confidence interval for the asymptote (noise floor)."""
-        low, high = self._band_from(np.array([self.asymptote]), self.boot_theta[:, :1], confidence)
-        return float(low[0]), float(high[0])
+        """Confidence interval for the asymptote (noise floor), worked out once per confidence."""
+        key = ("asymptote band", float(confidence))
+        if key not in self._tables:
+            low, high = self._band_from(np.array([self.asymptote]), self.boot_theta[:, :1],
+                                        confidence)
+            self._tables[key] = (float(low[0]), float(high[0]))
+        return self._tables[key]
 
     def band_too_wide(self, m, confidence: float = 0.9) -> bool:
         """True when the band at m is wider than WIDE_BAND_RATIO times the forecast."""
