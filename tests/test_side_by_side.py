@@ -151,3 +151,12 @@ def test_a_registered_thread_is_paused_for_the_fork_and_resumed():
         assert log == ["pause", "resume"] and state["thread"].is_alive()
     finally:
         stop()
+
+
+def test_when_no_process_can_be_made_the_parts_run_here(monkeypatch, forking):
+    # os.fork failing (process limit, memory) is not the user's problem: same answers, here.
+    def no_more_processes():
+        raise BlockingIOError(11, "Resource temporarily unavailable")
+    monkeypatch.setattr(os, "fork", no_more_processes)
+    assert forked.run_parts([os.getpid, os.getpid], 2) == [os.getpid(), os.getpid()]
+    assert forking == [False]

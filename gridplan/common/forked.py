@@ -77,7 +77,11 @@ def _fork_workers(count: int, tasks: int) -> tuple[ProcessPoolExecutor, list] | 
             # the only others are the BLAS pool's, which prepares itself for fork.
             warnings.filterwarnings("ignore", category=DeprecationWarning, message=".*fork.*")
             pool = ProcessPoolExecutor(count, mp_context=multiprocessing.get_context("fork"))
-            return pool, [pool.submit(_run_part, index) for index in range(tasks)]
+            try:
+                return pool, [pool.submit(_run_part, index) for index in range(tasks)]
+            except OSError:          # no more processes or memory for them: work here
+                pool.shutdown(wait=False, cancel_futures=True)
+                return None
     finally:
         for _, resume in reversed(_PAUSABLE):
             resume()
