@@ -14,6 +14,7 @@ from typing import TYPE_CHECKING, Iterator, Sequence
 
 from gridplan.common.checks import DEFAULT_BOOT, check_path_text, check_target
 from gridplan.common.errors import GridplanError
+from gridplan.common.files import replaced
 from gridplan.measuring.config import Config, load_config, parse_config  # noqa: F401 (load_config is public)
 from gridplan.measuring.runs import (  # noqa: F401 (public here as before)
     EXPORTS_KEY,
@@ -214,19 +215,14 @@ def export_cells(run_dir: str | Path, out: str | Path, *, force: bool = False) -
             raise GridplanError(f"{out} already exists and is not an earlier export of this run; "
                                 f"pass --force to replace it.")
     frame = run.all_cells()
-    temporary = target.with_name(f".{target.name}.{os.getpid()}.partial")
     try:
-        if out.suffix.lower() in (".parquet", ".pq"):
-            frame.to_parquet(temporary, index=False)
-        else:
-            frame.to_csv(temporary, index=False)
-        os.replace(temporary, target)
+        with replaced(target) as temporary:
+            if out.suffix.lower() in (".parquet", ".pq"):
+                frame.to_parquet(temporary, index=False)
+            else:
+                frame.to_csv(temporary, index=False)
     except OSError as exc:
-        temporary.unlink(missing_ok=True)
         raise GridplanError(f"cannot write {out}: {exc.strerror or exc}.") from None
-    except BaseException:
-        temporary.unlink(missing_ok=True)
-        raise
     _remember_export(run_dir, target, file_fingerprint(target))
     return len(frame)
 

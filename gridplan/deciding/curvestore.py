@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 from pathlib import Path
 from typing import Callable
 
@@ -19,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from gridplan.common.checks import DEFAULT_BOOT
+from gridplan.common.files import replaced
 from gridplan.deciding.curves import CurveFit, SettingInfo
 from gridplan.deciding.floor import SharedFloor
 from gridplan.deciding.gridfit import GridCurves, fit_grid
@@ -92,13 +92,12 @@ def _read(path: Path | None) -> dict:
 
 def _write(path: Path, states: dict) -> None:
     """Write atomically; a read-only run folder just goes without the file."""
-    temporary = path.with_name(f".{path.name}.{os.getpid()}.partial")
     try:
-        temporary.write_text(json.dumps({"version": FORMAT_VERSION, "states": states}),
-                             encoding="utf-8")
-        os.replace(temporary, path)
+        with replaced(path) as temporary:
+            temporary.write_text(json.dumps({"version": FORMAT_VERSION, "states": states}),
+                                 encoding="utf-8")
     except OSError:
-        temporary.unlink(missing_ok=True)
+        pass
 
 
 # --- to and from plain JSON ---------------------------------------------------------

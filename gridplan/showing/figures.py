@@ -82,20 +82,23 @@ SHOW_TITLES = {
 
 # --- matplotlib set-up --------------------------------------------------------------
 
-def load_drawing_libraries() -> None:
-    """Import matplotlib (on the Agg canvas) and seaborn now, before any figure is drawn."""
+def _use_agg() -> None:
+    """matplotlib on the non-interactive Agg canvas, unless pyplot already chose one."""
     import matplotlib
     if "matplotlib.pyplot" not in sys.modules:
         matplotlib.use("Agg")
+
+
+def load_drawing_libraries() -> None:
+    """Import matplotlib (on the Agg canvas) and seaborn now, before any figure is drawn."""
+    _use_agg()
     import matplotlib.backends.backend_agg  # noqa: F401
     import seaborn  # noqa: F401
 
 
 def _new_figure(width: float, height: float) -> "Figure":
     """A Figure on the non-interactive Agg canvas, not registered with pyplot."""
-    import matplotlib
-    if "matplotlib.pyplot" not in sys.modules:
-        matplotlib.use("Agg")
+    _use_agg()
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
     figure = Figure(figsize=(width, height), layout="constrained")
@@ -849,32 +852,22 @@ def save_figure(figure: "Figure", path: str | Path, dpi: int = PNG_DPI) -> Path:
     The picture goes to a temporary file beside `path` that then replaces it,
     so a failed or interrupted save leaves no half-written file.
     """
-    import os
-    import tempfile
+    from gridplan.common.files import replaced
     path = Path(path)
     kind = path.suffix.lower().lstrip(".")
     if kind not in FIGURE_FORMATS:
         raise GridplanError(f"Cannot draw to {str(path)!r}: choose a file name ending in .png or .svg.")
-    temporary = None
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        handle, temporary = tempfile.mkstemp(prefix=f".{path.stem}-", suffix=path.suffix,
-                                             dir=path.parent)
-        os.close(handle)
-        if kind == "svg":
-            with _svg_settings():
-                figure.savefig(temporary, format="svg", metadata={"Date": None})
-        else:
-            figure.savefig(temporary, format="png", dpi=dpi)
-        os.chmod(temporary, 0o644)
-        os.replace(temporary, path)
-        temporary = None
+        with replaced(path) as temporary:
+            if kind == "svg":
+                with _svg_settings():
+                    figure.savefig(temporary, format="svg", metadata={"Date": None})
+            else:
+                figure.savefig(temporary, format="png", dpi=dpi)
     except OSError as exc:
         reason = exc.strerror or str(exc)
         raise GridplanError(f"Cannot write {path}: {reason}.") from None
-    finally:
-        if temporary is not None and os.path.exists(temporary):
-            os.unlink(temporary)
     return path
 
 

@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import math
 import os
-import tempfile
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
@@ -24,6 +23,7 @@ import pandas as pd
 
 from gridplan.common.checks import DEFAULT_BOOT
 from gridplan.common.errors import GridplanError
+from gridplan.common.files import replaced
 from gridplan.common.metrics import METRIC_LABELS, metric_label
 from gridplan.common.wording import money, plural, sig
 from gridplan.showing.gather import BACKTEST_FILE, ReportInputs, gather_inputs
@@ -795,15 +795,10 @@ def write_report(run_dir: str | Path, out: str | Path | None = None, *,
 def write_inputs(inputs: ReportInputs, path: Path) -> Path:
     """Render gathered inputs and replace `path` with the page in one step."""
     text = report_html(inputs)
-    temporary = None
     try:
-        handle, temporary = tempfile.mkstemp(prefix=".report-", suffix=".html", dir=path.parent)
-        with os.fdopen(handle, "w", encoding="utf-8") as stream:
-            stream.write(text)
-        os.chmod(temporary, 0o644)
-        os.replace(temporary, path)
+        with replaced(path) as temporary:
+            temporary.write_text(text, encoding="utf-8")
+            os.chmod(temporary, 0o644)
     except OSError as exc:
-        if temporary is not None and os.path.exists(temporary):
-            os.unlink(temporary)
         raise GridplanError(f"cannot write the report to {path}: {exc.strerror or exc}.") from None
     return path
