@@ -33,7 +33,7 @@ from typing import Iterable
 import numpy as np
 
 from gridplan.common.errors import GridplanError
-from gridplan.deciding.curves import CurveFit, Problem, make_problem
+from gridplan.deciding.curves import CurveFit, Problem, level_and_spread, make_problem
 
 #: Prior shape errors (relative error of a forecast's further drop; relative
 #: error of the forecast per doubling beyond the data) and their weight in
@@ -54,8 +54,8 @@ MIN_LEAN_CHECKS = 10
 ORIGINS = 3
 MIN_FIT_SIZES = 4
 #: A setting's own check error above which its forecasts are called rough: on the
-#: corpus, settings in the top quartile of own-check error (above 0.11) missed by a
-#: median 8.5% at x4, the others by 3.9% (common practice, no published source).
+#: corpus, settings in the top quartile of own-check error (above 10.9%) missed by a
+#: median 8.5% at x4, the others by 3.9% (benchmarks/corpus.py prints both).
 OWN_CHECK_CAUTION = 0.10
 #: Bootstrap resamples per refit (only their spread at the held sizes is used).
 CHECK_BOOT = 12
@@ -167,8 +167,6 @@ def check_problems(data, asymptote_min: float = 0.0) -> list[tuple[Problem, tupl
     at least MIN_FIT_SIZES) with the sizes it did not see and their measured
     level and spread.
     """
-    from gridplan.deciding.curves import level_and_spread
-
     usable = np.any(np.isfinite(data.validation), axis=1)
     sizes, validation = data.sizes[usable], data.validation[usable]
     training = data.training[usable]
